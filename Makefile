@@ -1,0 +1,49 @@
+# Morrow: every set-up step lives here so a fresh machine needs only `make demo` or `make test`.
+PYTHON ?= python3
+VENV   ?= .venv
+BIN    := $(VENV)/bin
+DB     ?= sqlite:///morrow.db
+HOST   ?= 127.0.0.1
+PORT   ?= 8000
+
+.PHONY: demo test bench lint venv install install-test serve demo-data clean
+
+$(BIN)/python:
+	$(PYTHON) -m venv $(VENV)
+	$(BIN)/python -m pip install --quiet --upgrade pip
+
+# The stamp files make re-runs fast: pip runs again only when pyproject.toml changes.
+$(VENV)/.installed: pyproject.toml | $(BIN)/python
+	$(BIN)/pip install --quiet -e .
+	touch $@
+
+$(VENV)/.installed-test: pyproject.toml | $(BIN)/python
+	$(BIN)/pip install --quiet -e '.[test,dev]'
+	touch $@ $(VENV)/.installed
+
+install: $(VENV)/.installed
+install-test: $(VENV)/.installed-test
+
+demo: install
+	$(BIN)/morrow --db $(DB) db upgrade
+	$(BIN)/morrow --db $(DB) demo load
+	$(BIN)/morrow --db $(DB) demo train
+	$(BIN)/morrow --db $(DB) demo users
+	$(BIN)/morrow --db $(DB) serve --host $(HOST) --port $(PORT)
+
+test: install-test
+	$(BIN)/python -m pytest -q tests --ignore=tests/benchmarks
+
+bench: install-test
+	$(BIN)/python -m pytest -q tests/benchmarks -s -p no:randomly
+
+lint: install-test
+	$(BIN)/ruff check app tests migrations
+	$(BIN)/mypy app
+
+# Regenerates the committed demo CSVs (seeded, deterministic).
+demo-data: install
+	$(BIN)/python -m app.demo.generate --out demo_data
+
+clean:
+	rm -rf $(VENV) morrow.db morrow.db-wal morrow.db-shm .pytest_cache

@@ -1,0 +1,1 @@
+"""The ``morrow`` command line (stable for scripts: see DATA_CONTRACT.md)."""

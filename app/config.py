@@ -1,0 +1,56 @@
+"""One place for settings: environment variables prefixed ``MORROW_``."""
+
+from __future__ import annotations
+
+from functools import lru_cache
+from pathlib import Path
+from zoneinfo import ZoneInfo
+
+from pydantic import field_validator
+from pydantic_settings import BaseSettings, SettingsConfigDict
+
+PROJECT_ROOT = Path(__file__).resolve().parent.parent
+
+
+def _machine_zone_name() -> str:
+    """The machine's IANA zone name, falling back to UTC when it cannot be read."""
+    tz_env = Path("/etc/timezone")
+    if tz_env.exists():
+        name = tz_env.read_text().strip()
+        if name:
+            return name
+    localtime = Path("/etc/localtime")
+    if localtime.is_symlink():
+        target = str(localtime.resolve())
+        if "zoneinfo/" in target:
+            return target.split("zoneinfo/", 1)[1]
+    return "UTC"
+
+
+class Settings(BaseSettings):
+    """Run-time settings; every field can be set as ``MORROW_<FIELD>``."""
+
+    model_config = SettingsConfigDict(env_prefix="MORROW_", extra="ignore")
+
+    database_url: str = "sqlite:///morrow.db"
+    timezone: str = ""
+    max_upload_bytes: int = 50 * 1024 * 1024
+
+    @field_validator("timezone")
+    @classmethod
+    def _known_zone(cls, value: str) -> str:
+        name = value or _machine_zone_name()
+        try:
+            ZoneInfo(name)
+        except Exception as exc:  # zoneinfo raises several kinds
+            raise ValueError(f"MORROW_TIMEZONE={name!r} is not an IANA time zone name") from exc
+        return name
+
+    @property
+    def tz(self) -> ZoneInfo:
+        return ZoneInfo(self.timezone or _machine_zone_name())
+
+
+@lru_cache
+def get_settings() -> Settings:
+    return Settings()

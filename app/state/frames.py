@@ -1,0 +1,156 @@
+"""The "as of" state of a unit as plain pandas frames (no database here).
+
+Every timestamp column is ``datetime64[ns, UTC]``. The rules (DATA_CONTRACT.md, "as of"):
+
+- a stay is in the unit at ``t`` when ``admitted_at <= t`` and it has no ``discharged_at``
+  or ``discharged_at > t``; a discharge after ``as_of`` is unknown, so it is NaT here;
+- observations count only with ``observed_at <= as_of`` and ``recorded_at <= as_of``; each
+  (stay, observed_at, name) takes its latest value recorded by the instant asked about;
+- covariates of a stay are known from admission;
+- bookings count with ``booked_at <= as_of``; a cancellation after ``as_of`` is unknown.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from datetime import date, time
+from zoneinfo import ZoneInfo
+
+import numpy as np
+import pandas as pd
+
+STAY_COLUMNS = ["stay_id", "admitted_at", "discharged_at", "admission_type", "outcome", "age",
+                "sex", "specialty", "source", "booking_id"]
+OBSERVATION_COLUMNS = ["stay_id", "observed_at", "name", "value", "recorded_at"]
+BOOKING_COLUMNS = ["booking_id", "booked_at", "planned_date", "age", "sex", "specialty", "source",
+                   "procedure", "cancelled_at"]
+SNAPSHOT_COLUMNS = ["taken_at", "occupancy"]
+
+
+@dataclass(frozen=True, eq=False)
+class UnitState:
+    """Everything known about one unit at ``as_of``.
+
+    Attributes
+    ----------
+    unit : str
+    as_of : pandas.Timestamp
+        Aware, UTC.
+    tz : ZoneInfo
+        The site's time zone; census instants are wall-clock times in it.
+    census_time : datetime.time
+        The unit's daily census instant (local wall-clock).
+    bed_plan : tuple of (date or None, int)
+        Staffed beds from each ``valid_from`` on (None: always), oldest first. Bed plans are
+        known before they take effect, so the whole plan is here.
+    stays : DataFrame
+        Stays admitted by ``as_of`` (``STAY_COLUMNS``), discharges after ``as_of`` blanked.
+    observations : DataFrame
+        Observation rows known at ``as_of`` (``OBSERVATION_COLUMNS``), corrections included.
+    bookings : DataFrame
+        Bookings made by ``as_of`` (``BOOKING_COLUMNS``), later cancellations blanked.
+    snapshots : DataFrame
+        Census snapshots taken by ``as_of`` with their occupancy (``SNAPSHOT_COLUMNS``).
+    """
+
+    unit: str
+    as_of: pd.Timestamp
+    tz: ZoneInfo
+    census_time: time
+    bed_plan: tuple[tuple[date | None, int], ...]
+    stays: pd.DataFrame
+    observations: pd.DataFrame
+    bookings: pd.DataFrame
+    snapshots: pd.DataFrame
+
+    def beds_on(self, day: date) -> int | None:
+        """Staffed beds on a local day (from that day's census instant on)."""
+        beds = None
+        for valid_from, count in self.bed_plan:
+            if valid_from is None or valid_from <= day:
+                beds = count
+        return beds
+
+    def present_mask(self, instant: pd.Timestamp) -> np.ndarray:
+        """Which rows of ``stays`` are in the unit at ``instant`` (must not be after as_of)."""
+        if instant > self.as_of:
+            raise ValueError(f"instant {instant} is after as_of {self.as_of}: unknown then")
+        admitted = self.stays["admitted_at"] <= instant
+        discharged = self.stays["discharged_at"]
+        still_in = discharged.isna() | (discharged > instant)
+        return (admitted & still_in).to_numpy()
+
+    def occupancy_at(self, instant: pd.Timestamp) -> int:
+        """Stays in the unit at a past instant (the census count it implies)."""
+        return int(self.present_mask(instant).sum())
+
+    def history(self) -> pd.DataFrame:
+        """Stays with their length of stay in days so far, censored at ``as_of``.
+
+        Adds ``end`` (discharge, or as_of while in the unit), ``event`` (True when discharged)
+        and ``los_days``.
+        """
+        frame = self.stays.copy()
+        frame["event"] = frame["discharged_at"].notna()
+        frame["end"] = frame["discharged_at"].where(frame["event"], self.as_of)
+        frame["los_days"] = (frame["end"] - frame["admitted_at"]).dt.total_seconds() / 86400.0
+        return frame
+
+    def current_stays(self) -> pd.DataFrame:
+        """Stays in the unit at ``as_of``, with days in and their latest observations.
+
+        For each observation name ``n`` the columns ``n`` (latest value), ``n_change``
+        (change since the previous observation, NaN when there is none) and ``n_hours``
+        (hours since it was observed) are added.
+        """
+        current = self.stays.loc[self.present_mask(self.as_of)].copy()
+        current["days_in"] = (self.as_of - current["admitted_at"]).dt.total_seconds() / 86400.0
+        latest = latest_observations(self.observations, self.as_of,
+                                     stay_ids=current["stay_id"])
+        return _widen(current, latest, self.as_of).reset_index(drop=True)
+
+    def open_bookings(self) -> pd.DataFrame:
+        """Bookings not cancelled by as_of, not yet admitted, planned for today or later."""
+        today = self.as_of.tz_convert(self.tz).date()
+        admitted = set(self.stays["booking_id"].dropna())
+        b = self.bookings
+        keep = (b["cancelled_at"].isna() & (b["planned_date"] >= today)
+                & ~b["booking_id"].isin(admitted))
+        return b.loc[keep].reset_index(drop=True)
+
+
+def latest_observations(observations: pd.DataFrame, at: pd.Timestamp,
+                        stay_ids: pd.Series | None = None) -> pd.DataFrame:
+    """Per (stay, name): the latest value known at ``at``, its time, and the previous value.
+
+    Only rows with ``observed_at <= at`` and ``recorded_at <= at`` count, and each
+    (stay, observed_at, name) takes the value recorded last by ``at`` (corrections).
+    Returns columns stay_id, name, observed_at, value, previous.
+    """
+    obs = observations
+    if stay_ids is not None:
+        obs = obs.loc[obs["stay_id"].isin(stay_ids)]
+    obs = obs.loc[(obs["observed_at"] <= at) & (obs["recorded_at"] <= at)]
+    if obs.empty:
+        return pd.DataFrame({"stay_id": pd.Series(dtype=object), "name": pd.Series(dtype=object),
+                             "observed_at": pd.Series(dtype="datetime64[ns, UTC]"),
+                             "value": pd.Series(dtype=float), "previous": pd.Series(dtype=float)})
+    obs = obs.sort_values(["stay_id", "name", "observed_at", "recorded_at"], kind="mergesort")
+    obs = obs.drop_duplicates(["stay_id", "name", "observed_at"], keep="last")
+    obs = obs.assign(previous=obs.groupby(["stay_id", "name"], sort=False)["value"].shift(1))
+    last = obs.drop_duplicates(["stay_id", "name"], keep="last")
+    return last[["stay_id", "name", "observed_at", "value", "previous"]].reset_index(drop=True)
+
+
+def _widen(stays: pd.DataFrame, latest: pd.DataFrame, at: pd.Timestamp) -> pd.DataFrame:
+    out = stays
+    for name, group in latest.groupby("name", sort=True):
+        g = group.set_index("stay_id")
+        key = out["stay_id"]
+        out = out.assign(**{
+            str(name): key.map(g["value"]).astype(float),
+            f"{name}_change": key.map(g["value"] - g["previous"]).astype(float),
+            f"{name}_hours": key.map((at - g["observed_at"]).dt.total_seconds() / 3600.0)
+            .astype(float),
+        })
+    return out

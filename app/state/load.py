@@ -1,0 +1,105 @@
+"""Build a ``UnitState`` from the store, applying the "as of" rule in the queries."""
+
+from __future__ import annotations
+
+from datetime import datetime
+from zoneinfo import ZoneInfo
+
+import pandas as pd
+from sqlalchemy import func, select
+from sqlalchemy.orm import Session
+
+from app.state.frames import (
+    BOOKING_COLUMNS,
+    OBSERVATION_COLUMNS,
+    SNAPSHOT_COLUMNS,
+    STAY_COLUMNS,
+    UnitState,
+)
+from app.store import repo
+from app.store.models import Booking, CensusRow, CensusSnapshot, Observation, Stay
+from app.timeutil import as_utc, parse_clock
+
+
+class UnknownUnit(LookupError):
+    """The unit code is not stored."""
+
+
+def _utc_column(values: list[datetime | None]) -> pd.Series:
+    return pd.Series(pd.to_datetime([None if v is None else as_utc(v) for v in values], utc=True),
+                     dtype="datetime64[ns, UTC]")
+
+
+def load_state(session: Session, unit: str, as_of: datetime, tz: ZoneInfo, *,
+               with_history: bool = True) -> UnitState:
+    """What was known about ``unit`` at ``as_of``.
+
+    With ``with_history=False`` only the stays in the unit at ``as_of`` (and their
+    observations) are loaded: enough for a forecast from a trained model, and much faster.
+    """
+    stored_unit = repo.get_unit(session, unit)
+    if stored_unit is None:
+        raise UnknownUnit(f"unit {unit!r} is not known; import units.csv first")
+    as_of = as_utc(as_of)
+    stay_query = select(*[getattr(Stay, c) for c in STAY_COLUMNS]).where(
+        Stay.unit == unit, Stay.admitted_at <= as_of)
+    if not with_history:
+        stay_query = stay_query.where(
+            (Stay.discharged_at.is_(None)) | (Stay.discharged_at > as_of))
+    stay_rows = session.execute(stay_query.order_by(Stay.admitted_at, Stay.stay_id)).all()
+    stays = pd.DataFrame(stay_rows, columns=STAY_COLUMNS)
+    discharged = [d if d is not None and d <= as_of else None for d in stays["discharged_at"]]
+    stays["admitted_at"] = _utc_column(list(stays["admitted_at"]))
+    stays["discharged_at"] = _utc_column(discharged)
+    stays["outcome"] = stays["outcome"].where(stays["discharged_at"].notna(), None)
+    stays["age"] = pd.to_numeric(stays["age"], errors="coerce").astype(float)
+
+    obs_query = (select(*[getattr(Observation, c) for c in OBSERVATION_COLUMNS])
+                 .join(Stay, Observation.stay_id == Stay.stay_id)
+                 .where(Stay.unit == unit, Stay.admitted_at <= as_of,
+                        Observation.observed_at <= as_of, Observation.recorded_at <= as_of))
+    if not with_history:
+        obs_query = obs_query.where(
+            (Stay.discharged_at.is_(None)) | (Stay.discharged_at > as_of))
+    obs_rows = session.execute(obs_query.order_by(
+        Observation.stay_id, Observation.name, Observation.observed_at,
+        Observation.recorded_at)).all()
+    observations = pd.DataFrame(obs_rows, columns=OBSERVATION_COLUMNS)
+    observations["observed_at"] = _utc_column(list(observations["observed_at"]))
+    observations["recorded_at"] = _utc_column(list(observations["recorded_at"]))
+    observations["value"] = observations["value"].astype(float)
+
+    booking_rows = session.execute(
+        select(*[getattr(Booking, c) for c in BOOKING_COLUMNS])
+        .where(Booking.unit == unit, Booking.booked_at <= as_of)
+        .order_by(Booking.planned_date, Booking.booking_id)).all()
+    bookings = pd.DataFrame(booking_rows, columns=BOOKING_COLUMNS)
+    cancelled = [c if c is not None and c <= as_of else None for c in bookings["cancelled_at"]]
+    bookings["booked_at"] = _utc_column(list(bookings["booked_at"]))
+    bookings["cancelled_at"] = _utc_column(cancelled)
+    bookings["age"] = pd.to_numeric(bookings["age"], errors="coerce").astype(float)
+
+    if with_history:
+        snapshot_rows = session.execute(
+            select(CensusSnapshot.taken_at, func.count(CensusRow.id))
+            .join(CensusRow, CensusRow.snapshot_id == CensusSnapshot.id)
+            .where(CensusSnapshot.unit == unit, CensusSnapshot.taken_at <= as_of)
+            .group_by(CensusSnapshot.id, CensusSnapshot.taken_at)
+            .order_by(CensusSnapshot.taken_at)).all()
+    else:
+        snapshot_rows = []
+    snapshots = pd.DataFrame(snapshot_rows, columns=SNAPSHOT_COLUMNS)
+    snapshots["taken_at"] = _utc_column(list(snapshots["taken_at"]))
+    snapshots["occupancy"] = snapshots["occupancy"].astype(int)
+
+    return UnitState(
+        unit=unit,
+        as_of=pd.Timestamp(as_of),
+        tz=tz,
+        census_time=parse_clock(stored_unit.census_time),
+        bed_plan=tuple(repo.bed_plan(session, unit)),
+        stays=stays,
+        observations=observations,
+        bookings=bookings,
+        snapshots=snapshots,
+    )

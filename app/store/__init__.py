@@ -1,0 +1,1 @@
+"""Storage: SQLAlchemy 2 models, the engine and session, and repositories."""

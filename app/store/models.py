@@ -1,0 +1,231 @@
+"""Typed SQLAlchemy 2 models. Every timestamp is stored as naive UTC and read back aware."""
+
+from __future__ import annotations
+
+from datetime import UTC, date, datetime
+from typing import Any
+
+from sqlalchemy import (
+    JSON,
+    Date,
+    DateTime,
+    Float,
+    ForeignKey,
+    Index,
+    Integer,
+    MetaData,
+    String,
+    Text,
+    TypeDecorator,
+    UniqueConstraint,
+)
+from sqlalchemy.orm import DeclarativeBase, Mapped, mapped_column
+
+
+class UTCDateTime(TypeDecorator[datetime]):
+    """Aware datetimes in, aware UTC datetimes out; naive UTC in the column on every database."""
+
+    impl = DateTime
+    cache_ok = True
+
+    def process_bind_param(self, value: datetime | None, dialect: Any) -> datetime | None:
+        if value is None:
+            return None
+        if value.tzinfo is None:
+            raise ValueError("naive datetime given to a UTC column; attach a time zone first")
+        return value.astimezone(UTC).replace(tzinfo=None)
+
+    def process_result_value(self, value: datetime | None, dialect: Any) -> datetime | None:
+        if value is None:
+            return None
+        return value.replace(tzinfo=UTC) if value.tzinfo is None else value.astimezone(UTC)
+
+
+NAMING_CONVENTION = {
+    "ix": "ix_%(column_0_label)s",
+    "uq": "uq_%(table_name)s_%(column_0_N_name)s",
+    "ck": "ck_%(table_name)s_%(constraint_name)s",
+    "fk": "fk_%(table_name)s_%(column_0_name)s_%(referred_table_name)s",
+    "pk": "pk_%(table_name)s",
+}
+
+
+class Base(DeclarativeBase):
+    metadata = MetaData(naming_convention=NAMING_CONVENTION)
+    type_annotation_map = {datetime: UTCDateTime, dict[str, Any]: JSON}
+
+
+def utcnow() -> datetime:
+    return datetime.now(UTC)
+
+
+class ImportBatch(Base):
+    """One imported file (or one form submission): what came in and what it changed."""
+
+    __tablename__ = "import_batch"
+
+    id: Mapped[int] = mapped_column(primary_key=True)
+    kind: Mapped[str] = mapped_column(String(20))
+    filename: Mapped[str] = mapped_column(String(255))
+    sha256: Mapped[str] = mapped_column(String(64), index=True)
+    rows: Mapped[int] = mapped_column(Integer)
+    inserted: Mapped[int] = mapped_column(Integer, default=0)
+    updated: Mapped[int] = mapped_column(Integer, default=0)
+    unchanged: Mapped[int] = mapped_column(Integer, default=0)
+    actor: Mapped[str] = mapped_column(String(100))
+    created_at: Mapped[datetime] = mapped_column(default=utcnow)
+
+
+class Unit(Base):
+    __tablename__ = "unit"
+
+    code: Mapped[str] = mapped_column(String(64), primary_key=True)
+    census_time: Mapped[str] = mapped_column(String(5), default="00:00")
+    created_at: Mapped[datetime] = mapped_column(default=utcnow)
+
+
+class UnitBeds(Base):
+    """Staffed beds of a unit from ``valid_from`` on (``None``: always). Plans are known early."""
+
+    __tablename__ = "unit_beds"
+    __table_args__ = (UniqueConstraint("unit", "valid_from"),)
+
+    id: Mapped[int] = mapped_column(primary_key=True)
+    unit: Mapped[str] = mapped_column(ForeignKey("unit.code"), index=True)
+    valid_from: Mapped[date | None] = mapped_column(Date)
+    beds: Mapped[int] = mapped_column(Integer)
+    batch_id: Mapped[int | None] = mapped_column(ForeignKey("import_batch.id"))
+
+
+class Stay(Base):
+    """One patient's continuous time in one unit."""
+
+    __tablename__ = "stay"
+    __table_args__ = (Index("ix_stay_unit_admitted", "unit", "admitted_at"),)
+
+    stay_id: Mapped[str] = mapped_column(String(64), primary_key=True)
+    unit: Mapped[str] = mapped_column(ForeignKey("unit.code"))
+    admitted_at: Mapped[datetime]
+    discharged_at: Mapped[datetime | None]
+    # "stays" when an exact time came from a stays file, "census" when inferred from snapshots.
+    discharge_source: Mapped[str | None] = mapped_column(String(10))
+    admission_type: Mapped[str] = mapped_column(String(10))
+    outcome: Mapped[str | None] = mapped_column(String(10))
+    age: Mapped[int | None] = mapped_column(Integer)
+    sex: Mapped[str | None] = mapped_column(String(1))
+    specialty: Mapped[str | None] = mapped_column(String(100))
+    source: Mapped[str | None] = mapped_column(String(100))
+    booking_id: Mapped[str | None] = mapped_column(String(64))
+
+
+class CensusSnapshot(Base):
+    """The set of census rows of one unit at one instant."""
+
+    __tablename__ = "census_snapshot"
+    __table_args__ = (UniqueConstraint("unit", "taken_at"),)
+
+    id: Mapped[int] = mapped_column(primary_key=True)
+    unit: Mapped[str] = mapped_column(ForeignKey("unit.code"))
+    taken_at: Mapped[datetime]
+    batch_id: Mapped[int | None] = mapped_column(ForeignKey("import_batch.id"))
+
+
+class CensusRow(Base):
+    """One occupied bed in a snapshot, kept as received."""
+
+    __tablename__ = "census_row"
+    __table_args__ = (UniqueConstraint("snapshot_id", "stay_id"),)
+
+    id: Mapped[int] = mapped_column(primary_key=True)
+    snapshot_id: Mapped[int] = mapped_column(ForeignKey("census_snapshot.id"), index=True)
+    stay_id: Mapped[str] = mapped_column(ForeignKey("stay.stay_id"), index=True)
+    bed: Mapped[str | None] = mapped_column(String(64))
+    admitted_at: Mapped[datetime]
+    admission_type: Mapped[str] = mapped_column(String(10))
+    age: Mapped[int | None] = mapped_column(Integer)
+    sex: Mapped[str | None] = mapped_column(String(1))
+    specialty: Mapped[str | None] = mapped_column(String(100))
+    source: Mapped[str | None] = mapped_column(String(100))
+    booking_id: Mapped[str | None] = mapped_column(String(64))
+
+
+class Observation(Base):
+    """A timed score or flag. Append-only: a correction is a new row with a later ``recorded_at``."""
+
+    __tablename__ = "observation"
+    __table_args__ = (
+        UniqueConstraint("stay_id", "observed_at", "name", "recorded_at"),
+        Index("ix_observation_stay_name", "stay_id", "name"),
+    )
+
+    id: Mapped[int] = mapped_column(primary_key=True)
+    stay_id: Mapped[str] = mapped_column(ForeignKey("stay.stay_id"))
+    observed_at: Mapped[datetime]
+    name: Mapped[str] = mapped_column(String(64))
+    value: Mapped[float] = mapped_column(Float)
+    recorded_at: Mapped[datetime]
+    batch_id: Mapped[int | None] = mapped_column(ForeignKey("import_batch.id"))
+
+
+class Booking(Base):
+    """A planned elective admission."""
+
+    __tablename__ = "booking"
+    __table_args__ = (Index("ix_booking_unit_planned", "unit", "planned_date"),)
+
+    booking_id: Mapped[str] = mapped_column(String(64), primary_key=True)
+    unit: Mapped[str] = mapped_column(ForeignKey("unit.code"))
+    booked_at: Mapped[datetime]
+    planned_date: Mapped[date] = mapped_column(Date)
+    age: Mapped[int | None] = mapped_column(Integer)
+    sex: Mapped[str | None] = mapped_column(String(1))
+    specialty: Mapped[str | None] = mapped_column(String(100))
+    source: Mapped[str | None] = mapped_column(String(100))
+    procedure: Mapped[str | None] = mapped_column(String(100))
+    cancelled_at: Mapped[datetime | None]
+
+
+class AuditEvent(Base):
+    """Who changed which record, when, from which batch or form, with the values before and after."""
+
+    __tablename__ = "audit_event"
+    __table_args__ = (Index("ix_audit_entity", "entity", "entity_id"),)
+
+    id: Mapped[int] = mapped_column(primary_key=True)
+    at: Mapped[datetime] = mapped_column(default=utcnow, index=True)
+    actor: Mapped[str] = mapped_column(String(100))
+    action: Mapped[str] = mapped_column(String(20))
+    entity: Mapped[str] = mapped_column(String(30))
+    entity_id: Mapped[str] = mapped_column(String(200))
+    before: Mapped[dict[str, Any] | None]
+    after: Mapped[dict[str, Any] | None]
+    batch_id: Mapped[int | None] = mapped_column(ForeignKey("import_batch.id"))
+
+
+class TrainedModel(Base):
+    """A fitted length-of-stay and arrivals model, stored as JSON (never pickle)."""
+
+    __tablename__ = "trained_model"
+    __table_args__ = (Index("ix_trained_model_unit_until", "unit", "trained_until"),)
+
+    id: Mapped[str] = mapped_column(String(36), primary_key=True)
+    unit: Mapped[str] = mapped_column(ForeignKey("unit.code"))
+    trained_until: Mapped[datetime]
+    created_at: Mapped[datetime] = mapped_column(default=utcnow)
+    kind: Mapped[str] = mapped_column(String(40))
+    payload: Mapped[str] = mapped_column(Text)
+
+
+class StoredForecast(Base):
+    """A forecast as it was shown, kept to compare with the census that followed."""
+
+    __tablename__ = "stored_forecast"
+    __table_args__ = (Index("ix_stored_forecast_unit_as_of", "unit", "as_of"),)
+
+    id: Mapped[int] = mapped_column(primary_key=True)
+    unit: Mapped[str] = mapped_column(ForeignKey("unit.code"))
+    as_of: Mapped[datetime]
+    model_id: Mapped[str] = mapped_column(ForeignKey("trained_model.id"))
+    created_at: Mapped[datetime] = mapped_column(default=utcnow)
+    origin: Mapped[str] = mapped_column(String(20))
+    payload: Mapped[str] = mapped_column(Text)

@@ -1,0 +1,86 @@
+"""Queries shared by the layers above: every read and write of the store goes through here."""
+
+from __future__ import annotations
+
+from collections.abc import Iterator, Sequence
+from typing import Any, TypeVar
+
+from sqlalchemy import insert, select, update
+from sqlalchemy.orm import Session
+
+from app.store.models import AuditEvent, CensusRow, CensusSnapshot, Stay, Unit, UnitBeds
+
+T = TypeVar("T")
+
+
+def chunked(items: Sequence[T], size: int) -> Iterator[Sequence[T]]:
+    """Slices of at most ``size``: keeps IN lists and bulk inserts under database limits."""
+    for start in range(0, len(items), size):
+        yield items[start : start + size]
+
+
+def infer_census_discharges(session: Session, unit: str, *, actor: str,
+                            batch_id: int | None) -> int:
+    """Diff a unit's snapshots into discharges; returns how many stays changed.
+
+    A stay present in one snapshot and absent from the next is discharged at the later
+    snapshot's time. An exact ``discharged_at`` from a stays file always wins, so stays whose
+    discharge came from a stays file are never touched here.
+    """
+    snapshots = session.execute(
+        select(CensusSnapshot.id, CensusSnapshot.taken_at)
+        .where(CensusSnapshot.unit == unit).order_by(CensusSnapshot.taken_at)).all()
+    if not snapshots:
+        return 0
+    order = {snap_id: i for i, (snap_id, _) in enumerate(snapshots)}
+    last_seen: dict[str, int] = {}
+    rows = session.execute(
+        select(CensusRow.stay_id, CensusRow.snapshot_id)
+        .join(CensusSnapshot, CensusRow.snapshot_id == CensusSnapshot.id)
+        .where(CensusSnapshot.unit == unit))
+    for stay_id, snap_id in rows:
+        i = order[snap_id]
+        if last_seen.get(stay_id, -1) < i:
+            last_seen[stay_id] = i
+    changed = 0
+    audits: list[dict[str, Any]] = []
+    for part in chunked(sorted(last_seen), 500):
+        for stay in session.scalars(select(Stay).where(Stay.stay_id.in_(part))):
+            if stay.discharge_source == "stays":
+                continue
+            i = last_seen[stay.stay_id]
+            inferred = snapshots[i + 1][1] if i + 1 < len(snapshots) else None
+            source = "census" if inferred is not None else None
+            if stay.discharged_at == inferred and stay.discharge_source == source:
+                continue
+            audits.append({
+                "actor": actor, "batch_id": batch_id, "action": "update", "entity": "stay",
+                "entity_id": stay.stay_id,
+                "before": {"discharged_at": _iso(stay.discharged_at),
+                           "discharge_source": stay.discharge_source},
+                "after": {"discharged_at": _iso(inferred), "discharge_source": source}})
+            session.execute(update(Stay).where(Stay.stay_id == stay.stay_id)
+                            .values(discharged_at=inferred, discharge_source=source))
+            changed += 1
+    if audits:
+        session.execute(insert(AuditEvent), audits)
+    return changed
+
+
+def _iso(value: Any) -> str | None:
+    return None if value is None else value.isoformat()
+
+
+def list_units(session: Session) -> list[Unit]:
+    return list(session.scalars(select(Unit).order_by(Unit.code)))
+
+
+def get_unit(session: Session, code: str) -> Unit | None:
+    return session.get(Unit, code)
+
+
+def bed_plan(session: Session, unit: str) -> list[tuple[Any, int]]:
+    """(valid_from or None, beds) of a unit, oldest first; None (always) sorts first."""
+    rows = session.execute(select(UnitBeds.valid_from, UnitBeds.beds)
+                           .where(UnitBeds.unit == unit)).all()
+    return sorted(((v, b) for v, b in rows), key=lambda r: (r[0] is not None, r[0]))
