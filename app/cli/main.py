@@ -47,9 +47,12 @@ def cmd_import(args: argparse.Namespace) -> int:
 
 
 def cmd_demo_load(args: argparse.Namespace) -> int:
-    from app.demo.load import load_demo
+    from app.demo.load import is_loaded, load_demo
 
     with db.session_scope(args.db) as session:
+        if is_loaded(session, Path(args.dir)):
+            print("the demo hospital is already loaded in this database")
+            return EXIT_OK
         results, shift = load_demo(session, Path(args.dir), tz=get_settings().tz,
                                    shift=not args.no_shift)
     for result in results:

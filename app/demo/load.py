@@ -12,9 +12,11 @@ from datetime import date, datetime, timedelta
 from pathlib import Path
 from zoneinfo import ZoneInfo
 
+from sqlalchemy import select
 from sqlalchemy.orm import Session
 
 from app.ingest import ImportResult, import_file
+from app.store.models import Unit
 
 ORDER = ("units", "stays", "census", "observations", "bookings")
 TIMESTAMP_COLUMNS = {"admitted_at", "discharged_at", "taken_at", "observed_at", "recorded_at",
@@ -51,6 +53,17 @@ def shift_csv(data: bytes, shift: timedelta) -> bytes:
 def _last_census_instant(census: bytes) -> datetime:
     reader = csv.DictReader(io.StringIO(census.decode("utf-8")))
     return max(datetime.fromisoformat(row["taken_at"]) for row in reader)
+
+
+def demo_units(directory: Path) -> list[str]:
+    reader = csv.DictReader(io.StringIO((directory / "units.csv").read_text("utf-8")))
+    return sorted({row["unit"] for row in reader})
+
+
+def is_loaded(session: Session, directory: Path) -> bool:
+    """Whether the demo's units are already stored (loading twice would clash on dates)."""
+    codes = demo_units(directory)
+    return session.scalar(select(Unit.code).where(Unit.code.in_(codes)).limit(1)) is not None
 
 
 def load_demo(session: Session, directory: Path, *, tz: ZoneInfo, shift: bool = True,

@@ -2,20 +2,17 @@
 
 from __future__ import annotations
 
-from collections.abc import Iterator
 from datetime import UTC, datetime
-from typing import Annotated
 
-from fastapi import Depends, FastAPI, Request
+from fastapi import FastAPI, Request
 from fastapi.responses import HTMLResponse
 from fastapi.staticfiles import StaticFiles
 from fastapi.templating import Jinja2Templates
-from sqlalchemy.orm import Session
-
 from app import __version__
 from app.config import PROJECT_ROOT, get_settings
 from app.state import load_state
 from app.store import db, repo
+from app.web.deps import SessionDep
 
 templates = Jinja2Templates(directory=str(PROJECT_ROOT / "templates"))
 
@@ -27,12 +24,6 @@ def create_app(database_url: str | None = None) -> FastAPI:
     app = FastAPI(title="Morrow", version=__version__)
     app.state.database_url = url
     app.mount("/static", StaticFiles(directory=str(PROJECT_ROOT / "static")), name="static")
-
-    def get_session() -> Iterator[Session]:
-        with db.session_scope(url) as session:
-            yield session
-
-    SessionDep = Annotated[Session, Depends(get_session)]
 
     @app.get("/health")
     def health() -> dict[str, object]:

@@ -1,0 +1,22 @@
+"""The server answers its health check and lists units on the placeholder page."""
+
+from __future__ import annotations
+
+from fastapi.testclient import TestClient
+
+from app.web.app import create_app
+
+
+def test_health_and_home(demo_db: str) -> None:
+    client = TestClient(create_app(demo_db))
+    health = client.get("/health")
+    assert health.status_code == 200
+    assert health.json()["status"] == "ok" and health.json()["revision"] == "0001"
+    page = client.get("/")
+    assert page.status_code == 200
+    assert "KV-CRIT" in page.text and "do not replace" in page.text
+
+
+def test_empty_database_explains_first_step(db_url: str) -> None:
+    page = TestClient(create_app(db_url)).get("/")
+    assert "Import <code>units.csv</code> first" in page.text
