@@ -1,0 +1,151 @@
+"""Exact occupancy distribution: worked example, agreement with simulation, Little's law and
+the M/G/infinity mean."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from scipy import integrate, stats
+
+from app.stats.occupancy import (
+    ArrivalStream,
+    BookedAdmissions,
+    StayMixture,
+    occupancy_days,
+    simulate_paths,
+    stream_presence,
+)
+from app.stats.phasetype import Coxian
+
+NO_BOOKINGS = BookedAdmissions((), (), ())
+
+
+def hourly_stream(name: str, rate_per_day, days: int, stay, size=None, start: float = 0.0):
+    """Arrivals at hour midpoints from ``start`` for ``days`` days at a daily rate (or rates)."""
+    rates = np.broadcast_to(np.asarray(rate_per_day, dtype=float), (days,))
+    at, mean, day = [], [], []
+    for d in range(days):
+        for hour in range(24):
+            t = d + (hour + 0.5) / 24
+            if t > start:
+                at.append(t)
+                mean.append(rates[d] / 24)
+                day.append(d)
+    return ArrivalStream(name, tuple(at), tuple(mean), tuple(day), size, stay)
+
+
+def test_worked_example_from_methods() -> None:
+    # METHODS.md section 3, computed by hand there.
+    days = occupancy_days(np.array([[0.5], [0.3], [0.7], [0.3], [0.9]]), NO_BOOKINGS, [],
+                          [1.0], [3])
+    np.testing.assert_allclose(days[0].pmf, [0.00735, 0.09695, 0.3167, 0.3747, 0.17595, 0.02835],
+                               atol=1e-12)
+    assert days[0].p_over_capacity == pytest.approx(0.17595 + 0.02835, abs=1e-12)
+    assert days[0].quantiles["0.5"] == 3
+
+
+def mixed_inputs():
+    rng = np.random.default_rng(7)
+    census_at = np.arange(7) + 0.75  # as_of at 06:00, census at midnight
+    p0 = rng.uniform(0.3, 0.98, size=14)
+    decay = rng.uniform(0.55, 0.95, size=14)
+    p_current = p0[:, None] * decay[:, None] ** np.arange(7)[None, :]
+    booked = BookedAdmissions(p_go=(0.9, 0.85, 0.8), admit_at=(0.4, 1.6, 3.5),
+                              stays=(Coxian.erlang(2, 0.5), Coxian.exponential(0.4),
+                                     Coxian.erlang(3, 1.0)))
+    emergency_stay = StayMixture((0.7, 0.3), (Coxian.exponential(0.35), Coxian.erlang(2, 0.25)))
+    emergency = hourly_stream("emergency", [3, 2.6, 2.8, 2.5, 2.9, 2.0, 1.8, 3.0], 8,
+                              emergency_stay, size=6.0, start=0.0)
+    unbooked = hourly_stream("elective", 0.4, 8, Coxian.erlang(2, 0.6))
+    return p_current, booked, [emergency, unbooked], census_at
+
+
+def test_exact_pmf_matches_100k_simulated_paths() -> None:
+    p_current, booked, streams, census_at = mixed_inputs()
+    exact = occupancy_days(p_current, booked, streams, census_at, [16] * 7)
+    n = 100_000
+    paths = simulate_paths(p_current, booked, streams, census_at, n, np.random.default_rng(11))
+    worst = 0.0
+    for k, day in enumerate(exact):
+        observed = np.bincount(paths[:, k], minlength=day.pmf.size) / n
+        assert observed.size <= day.pmf.size + 1
+        observed = np.pad(observed, (0, max(0, day.pmf.size - observed.size)))[: day.pmf.size]
+        # Binomial standard error of each frequency; floored at one path (1/n) so that a
+        # probability of 1e-9 seen once in 100,000 paths is not counted as a miss.
+        se = np.sqrt(np.maximum(day.pmf * (1 - day.pmf), 1 / n) / n)
+        z = np.abs(observed - day.pmf) / se
+        worst = max(worst, float(z.max()))
+        assert np.all(z < 4), (k, float(z.max()))
+        assert abs(paths[:, k].mean() - day.mean) < 4 * paths[:, k].std() / np.sqrt(n)
+    assert worst > 0.5  # the comparison is live: sampling noise is visible
+
+
+def test_pmfs_sum_to_one_and_quantiles_agree() -> None:
+    p_current, booked, streams, census_at = mixed_inputs()
+    for day in occupancy_days(p_current, booked, streams, census_at, [16] * 7):
+        assert abs(day.pmf.sum() - 1) < 1e-9 and day.pmf.min() >= 0
+        cdf = np.cumsum(day.pmf)
+        for level, k in day.quantiles.items():
+            q = float(level)
+            assert cdf[k] >= q - 1e-9 and (k == 0 or cdf[k - 1] < q - 1e-12)
+        assert day.mean == pytest.approx(np.arange(day.pmf.size) @ day.pmf, abs=1e-12)
+        assert sum(day.components.values()) == pytest.approx(day.mean, rel=1e-9)
+        assert day.p_over_capacity == pytest.approx(day.pmf[17:].sum(), abs=1e-12)
+
+
+def test_arrivals_still_present_match_m_g_infinity() -> None:
+    # M/G/infinity: Poisson arrivals at rate lam, present at h with mean lam * int_0^h S(u) du.
+    lam, stay = 2.5, Coxian.erlang(3, 0.8)
+    stream = hourly_stream("emergency", lam, 10, stay)
+    census_at = np.array([0.5, 1.0, 2.0, 4.0, 7.0, 10.0])
+    presence = stream_presence(stream, census_at).sum(axis=0)
+    for h, got in zip(census_at, presence, strict=True):
+        want = lam * integrate.quad(lambda u: float(stay.sf(u)), 0, h)[0]
+        # Hourly midpoint rule: error O(1/24^2) relative; 0.2% is ample.
+        assert got == pytest.approx(want, rel=2e-3)
+
+
+def test_long_run_mean_obeys_littles_law() -> None:
+    # Little's law L = lam W: from an empty unit, the forecast mean far ahead is lam E[S].
+    lam = 3.0
+    stay = StayMixture((0.6, 0.4), (Coxian.exponential(0.5), Coxian.erlang(3, 0.4)))
+    stream = hourly_stream("emergency", lam, 80, stay)
+    day = occupancy_days(np.zeros((0, 1)), NO_BOOKINGS, [stream], [80.0], [None])[0]
+    assert day.mean == pytest.approx(lam * stay.mean(), rel=0.03)
+    assert day.mean == pytest.approx(lam * stay.mean(), rel=0.005)  # and in fact much closer
+
+
+def test_stationary_simulated_unit_forecasts_average_to_littles_law() -> None:
+    """A simulated M/G/infinity unit; forecasts from many mornings average to lam x mean stay."""
+    rng = np.random.default_rng(3)
+    lam, stay = 2.0, Coxian.erlang(2, 0.5)  # mean stay 4 days
+    horizon = 8000.0
+    arrive = np.cumsum(rng.exponential(1 / lam, size=int(lam * horizon * 1.2)))
+    arrive = arrive[arrive < horizon]
+    leave = arrive + stay.sample(arrive.size, rng)
+    stream = hourly_stream("emergency", lam, 8, stay, start=0.0)
+    census_at = np.arange(1, 8) - 0.25
+    presence = stream_presence(stream, census_at).sum(axis=0)
+    means = []
+    for t in np.arange(100.0, horizon - 10, 5.0):
+        present = (arrive <= t) & (leave > t)
+        spent = t - arrive[present]
+        p = stay.sf(spent[:, None] + census_at[None, :]) / stay.sf(spent)[:, None]
+        means.append(p.sum(axis=0) + presence)
+    average = np.mean(means, axis=0)
+    assert len(means) > 1500
+    np.testing.assert_allclose(average, lam * stay.mean(), rtol=0.03)
+
+
+def test_negative_binomial_stream_is_wider_than_poisson() -> None:
+    stay = Coxian.exponential(0.3)
+    poisson = hourly_stream("emergency", 3.0, 8, stay)
+    nb = hourly_stream("emergency", 3.0, 8, stay, size=4.0)
+    a = occupancy_days(np.zeros((0, 1)), NO_BOOKINGS, [poisson], [7.0], [None])[0]
+    b = occupancy_days(np.zeros((0, 1)), NO_BOOKINGS, [nb], [7.0], [None])[0]
+    assert a.mean == pytest.approx(b.mean, rel=1e-9)
+    var = lambda d: float(np.arange(d.pmf.size) ** 2 @ d.pmf - d.mean**2)  # noqa: E731
+    assert var(a) == pytest.approx(a.mean, rel=1e-6)  # Poisson: variance equals mean
+    assert var(b) > 1.2 * var(a)
+    # scipy cross-check of the Poisson part's shape.
+    np.testing.assert_allclose(a.pmf[:20], stats.poisson(a.mean).pmf(np.arange(20)), atol=1e-12)
