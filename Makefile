@@ -27,7 +27,9 @@ install-test: $(VENV)/.installed-test
 demo: install
 	$(BIN)/morrow --db $(DB) db upgrade
 	$(BIN)/morrow --db $(DB) demo load
-	@echo "Open http://$(HOST):$(PORT)/ in a browser (Ctrl-C stops the server)."
+	$(BIN)/morrow --db $(DB) demo train
+	$(BIN)/morrow --db $(DB) demo users
+	@echo "Open http://$(HOST):$(PORT)/ and sign in with one of the accounts above (Ctrl-C stops the server)."
 	$(BIN)/morrow --db $(DB) serve --host $(HOST) --port $(PORT)
 
 test: install-test

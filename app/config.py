@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+from datetime import UTC, datetime
 from functools import lru_cache
 from pathlib import Path
 from zoneinfo import ZoneInfo
@@ -35,6 +36,19 @@ class Settings(BaseSettings):
     database_url: str = "sqlite:///morrow.db"
     timezone: str = ""
     max_upload_bytes: int = 50 * 1024 * 1024
+    # Sign-in and sessions (app/web/security.py). An idle session ends after
+    # session_idle_minutes, any session after session_hours.
+    session_hours: float = 12.0
+    session_idle_minutes: int = 120
+    # Failed sign-ins for one name within signin_lockout_minutes lock that name for the rest
+    # of the window (common practice, no source).
+    max_failed_signins: int = 5
+    signin_lockout_minutes: int = 15
+    # Set when a TLS proxy is in front: cookies then carry the Secure attribute.
+    secure_cookies: bool = False
+    # A fixed "now" for the page and API (ISO 8601), for replaying a past morning in
+    # training sessions and tests; empty: the real time.
+    now: str = ""
 
     @field_validator("timezone")
     @classmethod
@@ -54,3 +68,13 @@ class Settings(BaseSettings):
 @lru_cache
 def get_settings() -> Settings:
     return Settings()
+
+
+def current_time() -> datetime:
+    """Now, or the fixed instant of ``MORROW_NOW`` (naive values are site-local)."""
+    settings = get_settings()
+    if not settings.now:
+        return datetime.now(UTC)
+    from app.timeutil import parse_timestamp
+
+    return parse_timestamp(settings.now, settings.tz)

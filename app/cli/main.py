@@ -3,14 +3,21 @@
 from __future__ import annotations
 
 import argparse
+import json
 import os
 import sys
 from collections.abc import Callable, Sequence
+from datetime import UTC, datetime
 from pathlib import Path
+from typing import Any
 
-from app.config import get_settings
+from sqlalchemy.orm import Session
+
+from app.cli import users
+from app.config import current_time, get_settings
 from app.ingest import KINDS, ImportRefused, import_file
-from app.store import db
+from app.store import db, repo
+from app.timeutil import parse_timestamp
 
 EXIT_OK, EXIT_ERROR, EXIT_BAD_INPUT = 0, 1, 2
 
@@ -62,6 +69,140 @@ def cmd_demo_load(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
+def _instant(text: str) -> datetime:
+    try:
+        return parse_timestamp(text, get_settings().tz)
+    except ValueError:
+        raise BadInput(f"{text!r} is not an ISO 8601 timestamp (e.g. 2026-03-02T08:00)") from None
+
+
+def _known_unit(session: Session, unit: str) -> None:
+    if repo.get_unit(session, unit) is None:
+        known = ", ".join(u.code for u in repo.list_units(session)) or "none yet"
+        raise BadInput(f"unit {unit!r} is not known (known units: {known})")
+
+
+def cmd_train(args: argparse.Namespace) -> int:
+    from app.forecast.los import format_metrics
+    from app.forecast.service import train_model
+
+    until = _instant(args.until) if args.until else datetime.now(UTC)
+    with db.session_scope(args.db) as session:
+        _known_unit(session, args.unit)
+        print(f"training {args.unit} on what was known at {until.isoformat()} ...", flush=True)
+        model_id, payload = train_model(session, args.unit, until, get_settings().tz)
+    print(format_metrics(payload["metrics"]))
+    print(f"stored model {model_id}")
+    return EXIT_OK
+
+
+def cmd_forecast(args: argparse.Namespace) -> int:
+    from app.forecast.service import NoModel, forecast
+
+    instants = [_instant(t) for t in args.as_of] or [datetime.now(UTC)]
+    tz = get_settings().tz
+    if args.days < 1:
+        raise BadInput(f"--days must be at least 1, got {args.days}")
+    results = []
+    with db.session_scope(args.db) as session:
+        _known_unit(session, args.unit)
+        for at in instants:  # all of them first: one failure prints nothing
+            try:
+                results.append(forecast(session, args.unit, at, tz, days=args.days))
+            except NoModel as exc:
+                raise BadInput(str(exc)) from None
+    if args.json:
+        for result in results:
+            print(json.dumps(result, allow_nan=False))
+        return EXIT_OK
+    for result in results:
+        print(render_forecast_table(result))
+    return EXIT_OK
+
+
+def render_forecast_table(result: dict[str, Any]) -> str:
+    lines = [f"{result['unit']} as of {result['as_of']} (model trained until "
+             f"{result['model']['trained_until']})",
+             f"{'census at':<27} {'beds':>4} {'median':>6} {'80% band':>9} {'95% band':>9} "
+             f"{'P(over)':>8}"]
+    for day in result["days"]:
+        q = day["quantiles"]
+        over = "" if day["p_over_capacity"] is None else f"{day['p_over_capacity']:.0%}"
+        lines.append(f"{day['census_at']:<27} {day['beds'] if day['beds'] is not None else '-':>4} "
+                     f"{q['0.5']:>6} {q['0.1']:>4}-{q['0.9']:<4} {q['0.025']:>4}-{q['0.975']:<4} "
+                     f"{over:>8}")
+    if "p_over_capacity_any_day" in result:
+        lines.append(f"chance of more patients than staffed beds on any of these days: "
+                     f"{result['p_over_capacity_any_day']:.0%}")
+    return "\n".join(lines)
+
+
+def cmd_backtest(args: argparse.Namespace) -> int:
+    from app.forecast.backtest import run_backtest, store_backtest, text_progress
+    from app.forecast.calibration_plot import save_calibration_plot
+    from app.timeutil import parse_date
+
+    try:
+        start, end = parse_date(args.start), parse_date(args.end)
+    except ValueError:
+        raise BadInput("--from and --to take dates YYYY-MM-DD") from None
+    with db.session_scope(args.db) as session:
+        _known_unit(session, args.unit)
+        result = run_backtest(session, args.unit, start, end, get_settings().tz, days=args.days,
+                              progress=None if args.json else text_progress)
+    plot = save_calibration_plot(result, Path(args.plot or f"backtest-{args.unit}-{start}-{end}.png"))
+    result["plot"] = str(plot)
+    with db.session_scope(args.db) as session:
+        store_backtest(session, result)
+    if args.json:
+        print(json.dumps({k: v for k, v in result.items() if k != "pit"}, allow_nan=False))
+    else:
+        print(render_backtest_table(result))
+        print(f"calibration plot: {plot}")
+    return EXIT_OK
+
+
+def render_backtest_table(result: dict[str, Any]) -> str:
+    methods = list(result["methods"])
+    lines = [f"backtest {result['unit']} {result['from']} .. {result['to']}"]
+    for key, label, fmt in (("crps", "CRPS (beds, lower is better)", "{:.3f}"),
+                            ("mae_median", "mean absolute error of the median", "{:.3f}"),
+                            ("pit_80", "share of PIT in [0.1, 0.9] (target 0.80)", "{:.3f}"),
+                            ("pit_95", "share of PIT in [0.025, 0.975] (target 0.95)", "{:.3f}"),
+                            ("coverage_80", "literal 80% interval coverage", "{:.3f}"),
+                            ("coverage_95", "literal 95% interval coverage", "{:.3f}"),
+                            ("log_score", "log score (lower is better)", "{:.3f}")):
+        lines.append("")
+        lines.append(label)
+        lines.append(f"{'days ahead':<18}" + "".join(f"{m:>17}" for m in methods))
+        for h in range(result["days"]):
+            lines.append(f"{h + 1:<18}" + "".join(
+                f"{fmt.format(result['methods'][m]['by_horizon'][h][key]):>17}" for m in methods))
+        lines.append(f"{'all':<18}" + "".join(
+            f"{fmt.format(result['methods'][m]['all'][key]):>17}" for m in methods))
+    return "\n".join(lines)
+
+
+def cmd_demo_train(args: argparse.Namespace) -> int:
+    """Train each unit that has no model yet (make demo runs this on every start)."""
+    from app.forecast.los import format_metrics
+    from app.forecast.models import newest_model
+    from app.forecast.service import train_model
+
+    now = current_time()
+    with db.session_scope(args.db) as session:
+        codes = [u.code for u in repo.list_units(session)]
+    for code in codes:
+        with db.session_scope(args.db) as session:
+            if newest_model(session, code, now) is not None:
+                print(f"{code}: a trained model is already there")
+                continue
+            print(f"{code}: training on the demo history (about a minute) ...", flush=True)
+            model_id, payload = train_model(session, code, now, get_settings().tz)
+        print(format_metrics(payload["metrics"]))
+    return EXIT_OK
+
+
 def cmd_serve(args: argparse.Namespace) -> int:
     import uvicorn
 
@@ -99,11 +240,38 @@ def build_parser() -> argparse.ArgumentParser:
     d.add_argument("--no-shift", action="store_true",
                    help="keep the generated dates instead of moving them to this week")
     d.set_defaults(func=cmd_demo_load)
+    users.register_demo(demosub)
+    demosub.add_parser("train", help="train every unit on what is known now"
+                       ).set_defaults(func=cmd_demo_train)
+
+    p = sub.add_parser("train", help="fit the unit's length-of-stay and arrivals models")
+    p.add_argument("--unit", required=True)
+    p.add_argument("--until", default=None,
+                   help="use only what was known at this instant (default: now)")
+    p.set_defaults(func=cmd_train)
+
+    p = sub.add_parser("forecast", help="occupancy at the next census instants")
+    p.add_argument("--unit", required=True)
+    p.add_argument("--as-of", action="append", default=[], dest="as_of",
+                   help="forecast from this instant (repeatable: JSON Lines; default: now)")
+    p.add_argument("--days", type=int, default=7)
+    p.add_argument("--json", action="store_true", help="the contract's JSON (format 1)")
+    p.set_defaults(func=cmd_forecast)
+
+    p = sub.add_parser("backtest", help="score past forecasts against the census that followed")
+    p.add_argument("--unit", required=True)
+    p.add_argument("--from", dest="start", required=True)
+    p.add_argument("--to", dest="end", required=True)
+    p.add_argument("--days", type=int, default=7)
+    p.add_argument("--plot", default=None, help="where to save the calibration plot (PNG)")
+    p.add_argument("--json", action="store_true")
+    p.set_defaults(func=cmd_backtest)
 
     p = sub.add_parser("serve", help="serve the web page and API")
     p.add_argument("--host", default="127.0.0.1")
     p.add_argument("--port", type=int, default=8000)
     p.set_defaults(func=cmd_serve)
+    users.register(sub)
     return parser
 
 

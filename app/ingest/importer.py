@@ -20,7 +20,7 @@ from sqlalchemy import insert, select, update
 from sqlalchemy.orm import Session
 
 from app.ingest import parse as p
-from app.ingest.parse import Column, ImportRefused, Problem, Sheet
+from app.ingest.parse import Column, ImportRefused, Sheet
 from app.store.models import (
     AuditEvent,
     Booking,

@@ -75,3 +75,10 @@ def current_revision(url: str) -> str | None:
 
     with get_engine(url).connect() as conn:
         return MigrationContext.configure(conn).get_current_revision()
+
+
+def head_revision() -> str | None:
+    """The newest migration in migrations/versions."""
+    from alembic.script import ScriptDirectory
+
+    return ScriptDirectory.from_config(alembic_config("sqlite://")).get_current_head()

@@ -229,3 +229,88 @@ class StoredForecast(Base):
     created_at: Mapped[datetime] = mapped_column(default=utcnow)
     origin: Mapped[str] = mapped_column(String(20))
     payload: Mapped[str] = mapped_column(Text)
+
+
+# -- people: accounts, sessions, API tokens, sign-in limits (app/store/users.py) ---------------
+
+class UserAccount(Base):
+    """A person who signs in. ``role`` is one of app.store.users.ROLES."""
+
+    __tablename__ = "user_account"
+
+    id: Mapped[int] = mapped_column(primary_key=True)
+    username: Mapped[str] = mapped_column(String(64), unique=True)
+    role: Mapped[str] = mapped_column(String(20))
+    # "scrypt$<log2 n>$<r>$<p>$<salt b64>$<key b64>": the cost travels with the hash.
+    password_hash: Mapped[str] = mapped_column(String(255))
+    active: Mapped[bool] = mapped_column(default=True)
+    created_at: Mapped[datetime] = mapped_column(default=utcnow)
+    password_changed_at: Mapped[datetime] = mapped_column(default=utcnow)
+
+
+class WebSession(Base):
+    """A signed-in browser. Only a hash of the cookie's secret is stored."""
+
+    __tablename__ = "web_session"
+
+    id: Mapped[int] = mapped_column(primary_key=True)
+    token_hash: Mapped[str] = mapped_column(String(64), unique=True)
+    user_id: Mapped[int] = mapped_column(ForeignKey("user_account.id", ondelete="CASCADE"),
+                                         index=True)
+    created_at: Mapped[datetime] = mapped_column(default=utcnow)
+    expires_at: Mapped[datetime]
+    last_seen_at: Mapped[datetime] = mapped_column(default=utcnow)
+
+
+class ApiToken(Base):
+    """A bearer token a bed manager issued to an API client; it acts with its user's role."""
+
+    __tablename__ = "api_token"
+
+    id: Mapped[int] = mapped_column(primary_key=True)
+    token_hash: Mapped[str] = mapped_column(String(64), unique=True)
+    # The first characters of the token, shown so a person can tell tokens apart.
+    prefix: Mapped[str] = mapped_column(String(16))
+    label: Mapped[str] = mapped_column(String(100))
+    user_id: Mapped[int] = mapped_column(ForeignKey("user_account.id", ondelete="CASCADE"),
+                                         index=True)
+    created_by: Mapped[str] = mapped_column(String(100))
+    created_at: Mapped[datetime] = mapped_column(default=utcnow)
+    last_used_at: Mapped[datetime | None]
+    revoked_at: Mapped[datetime | None]
+
+
+class SigninFailure(Base):
+    """Failed sign-ins for one typed name in the current window (known names or not)."""
+
+    __tablename__ = "signin_failure"
+
+    username: Mapped[str] = mapped_column(String(64), primary_key=True)
+    failures: Mapped[int] = mapped_column(Integer, default=0)
+    first_failed_at: Mapped[datetime]
+    locked_until: Mapped[datetime | None]
+
+
+class SigningKey(Base):
+    """Server secrets (the CSRF key), made once per database so every worker shares them."""
+
+    __tablename__ = "signing_key"
+
+    purpose: Mapped[str] = mapped_column(String(20), primary_key=True)
+    secret: Mapped[str] = mapped_column(String(128))
+    created_at: Mapped[datetime] = mapped_column(default=utcnow)
+
+
+class BacktestRun(Base):
+    """A backtest's summary (scores by method and horizon, PIT values), for the model page."""
+
+    __tablename__ = "backtest_run"
+    __table_args__ = (Index("ix_backtest_run_unit_created", "unit", "created_at"),)
+
+    id: Mapped[int] = mapped_column(primary_key=True)
+    unit: Mapped[str] = mapped_column(ForeignKey("unit.code"))
+    created_at: Mapped[datetime] = mapped_column(default=utcnow)
+    date_from: Mapped[date] = mapped_column(Date)
+    date_to: Mapped[date] = mapped_column(Date)
+    days: Mapped[int] = mapped_column(Integer)
+    result: Mapped[str] = mapped_column(Text)

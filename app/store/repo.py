@@ -84,3 +84,38 @@ def bed_plan(session: Session, unit: str) -> list[tuple[Any, int]]:
     rows = session.execute(select(UnitBeds.valid_from, UnitBeds.beds)
                            .where(UnitBeds.unit == unit)).all()
     return sorted(((v, b) for v, b in rows), key=lambda r: (r[0] is not None, r[0]))
+
+
+def latest_beds(session: Session, unit: str, stay_ids: Sequence[str]) -> dict[str, str]:
+    """The bed each stay had in the latest census snapshot that lists it."""
+    from sqlalchemy import func
+
+    if not stay_ids:
+        return {}
+    latest = (select(CensusRow.stay_id, func.max(CensusSnapshot.taken_at).label("taken_at"))
+              .join(CensusSnapshot, CensusRow.snapshot_id == CensusSnapshot.id)
+              .where(CensusSnapshot.unit == unit, CensusRow.stay_id.in_(list(stay_ids)))
+              .group_by(CensusRow.stay_id).subquery())
+    rows = session.execute(
+        select(CensusRow.stay_id, CensusRow.bed)
+        .join(CensusSnapshot, CensusRow.snapshot_id == CensusSnapshot.id)
+        .join(latest, (latest.c.stay_id == CensusRow.stay_id)
+              & (latest.c.taken_at == CensusSnapshot.taken_at))
+        .where(CensusSnapshot.unit == unit))
+    return {stay_id: bed for stay_id, bed in rows if bed}
+
+
+def data_marker(session: Session) -> int:
+    """Changes whenever data is written (every write goes through an import batch)."""
+    from sqlalchemy import func
+
+    from app.store.models import ImportBatch
+
+    return int(session.scalar(select(func.max(ImportBatch.id))) or 0)
+
+
+def latest_snapshot_at(session: Session, unit: str) -> Any:
+    from sqlalchemy import func
+
+    return session.scalar(select(func.max(CensusSnapshot.taken_at))
+                          .where(CensusSnapshot.unit == unit))

@@ -2,19 +2,24 @@
 
 from __future__ import annotations
 
-from datetime import UTC, datetime
+from pathlib import Path
 
+import plotly
 from fastapi import FastAPI, Request
-from fastapi.responses import HTMLResponse
+from fastapi.responses import FileResponse, HTMLResponse
 from fastapi.staticfiles import StaticFiles
-from fastapi.templating import Jinja2Templates
+
 from app import __version__
-from app.config import PROJECT_ROOT, get_settings
+from app.config import PROJECT_ROOT, current_time, get_settings
 from app.state import load_state
 from app.store import db, repo
+from app.web import api, model_page, pages, routes_audit, routes_auth, security
 from app.web.deps import SessionDep
+from app.web.security import ReadActor
+from app.web.templating import templates
 
-templates = Jinja2Templates(directory=str(PROJECT_ROOT / "templates"))
+# Plotly's own JavaScript, served from the installed package: the page works offline.
+PLOTLY_JS = Path(plotly.__file__).resolve().parent / "package_data" / "plotly.min.js"
 
 
 def create_app(database_url: str | None = None) -> FastAPI:
@@ -24,6 +29,17 @@ def create_app(database_url: str | None = None) -> FastAPI:
     app = FastAPI(title="Morrow", version=__version__)
     app.state.database_url = url
     app.mount("/static", StaticFiles(directory=str(PROJECT_ROOT / "static")), name="static")
+    security.install(app)
+    app.include_router(routes_auth.router)
+    app.include_router(routes_audit.router)
+    app.include_router(pages.router)
+    app.include_router(api.router)
+    app.include_router(model_page.router)
+
+    @app.get("/vendor/plotly.min.js", include_in_schema=False)
+    def plotly_js() -> FileResponse:
+        return FileResponse(PLOTLY_JS, media_type="text/javascript",
+                            headers={"Cache-Control": "public, max-age=86400"})
 
     @app.get("/health")
     def health() -> dict[str, object]:
@@ -31,10 +47,10 @@ def create_app(database_url: str | None = None) -> FastAPI:
         return {"status": "ok", "version": __version__, "revision": db.current_revision(url)}
 
     @app.get("/", response_class=HTMLResponse)
-    def home(request: Request, session: SessionDep) -> HTMLResponse:
+    def home(request: Request, session: SessionDep, actor: ReadActor) -> HTMLResponse:
         """Units with their staffed beds and occupancy now."""
         tz = get_settings().tz
-        now = datetime.now(UTC)
+        now = current_time()
         rows = []
         for unit in repo.list_units(session):
             state = load_state(session, unit.code, now, tz, with_history=False)

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 from fastapi.testclient import TestClient
 
+from app.store import db
 from app.web.app import create_app
 
 
@@ -11,7 +12,7 @@ def test_health_and_home(demo_db: str) -> None:
     client = TestClient(create_app(demo_db))
     health = client.get("/health")
     assert health.status_code == 200
-    assert health.json()["status"] == "ok" and health.json()["revision"] == "0001"
+    assert health.json()["status"] == "ok" and health.json()["revision"] == db.head_revision()
     page = client.get("/")
     assert page.status_code == 200
     assert "KV-CRIT" in page.text and "do not replace" in page.text

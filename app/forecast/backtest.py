@@ -1,0 +1,268 @@
+"""Backtests: forecast each past morning from what was known then, score it against the
+census that followed, beside the baselines a bed manager might use instead.
+
+Models are retrained every ``retrain_days`` on what was known at that morning (held in
+memory, never stored), so no forecast sees data from after its ``as_of``. Outcomes are the
+occupancy at each census instant, counted from the stays as finally known.
+
+Baselines (METHODS.md section 5), each a full distribution so that proper scores compare:
+
+- ``yesterday``: the last census before as_of, plus the spread of k-step census changes
+  over the previous half year (persistence with its empirical error);
+- ``same_weekday``: the census at the same weekday and time over the last eight weeks,
+  as an empirical distribution;
+- ``mean_stay``: each current patient leaves at their admission group's mean remaining stay
+  (given the time already spent); arrivals and bookings as in Morrow's forecast;
+- ``one_distribution``: one Kaplan-Meier stay distribution for everyone, current patients by
+  their time spent, and Poisson arrivals at the past year's mean daily rate;
+- ``time_series``: a seasonal ARIMA (statsmodels SARIMAX, weekly season) of the daily census,
+  its normal predictive distribution rounded to whole beds.
+"""
+
+from __future__ import annotations
+
+import math
+import sys
+import warnings
+from collections.abc import Callable
+from dataclasses import dataclass, field
+from datetime import UTC, date, datetime, time, timedelta
+from typing import Any
+from zoneinfo import ZoneInfo
+
+import numpy as np
+import pandas as pd
+from scipy import stats
+from sqlalchemy.orm import Session
+
+from app.forecast.arrivals import train_arrivals
+from app.forecast.los import LosModel, state_as_of, train_los
+from app.forecast.service import ModelRecord, forecast_from_state, forecast_inputs
+from app.state import UnitState, load_state
+from app.stats.kaplan_meier import kaplan_meier
+from app.stats.occupancy import ArrivalStream, BookedAdmissions, occupancy_days
+from app.stats.poisson_binomial import pmf_quantile
+from app.stats.scoring import crps_pmf, log_score, randomised_pit
+from app.timeutil import census_instants_after, localize
+
+METHODS = ("morrow", "yesterday", "same_weekday", "mean_stay", "one_distribution",
+           "time_series")
+Progress = Callable[[int, int, str], None]
+
+
+@dataclass
+class Scored:
+    """Forecast pmfs and outcomes of one method, one row per (day, horizon)."""
+
+    horizon: list[int] = field(default_factory=list)
+    pmf: list[np.ndarray] = field(default_factory=list)
+    outcome: list[int] = field(default_factory=list)
+
+
+def _empirical_pmf(values: np.ndarray) -> np.ndarray:
+    values = np.clip(np.asarray(values, dtype=int), 0, None)
+    return np.bincount(values) / values.size
+
+
+def _normal_pmf(mean: float, sd: float, kmax: int) -> np.ndarray:
+    edges = np.arange(kmax + 2) - 0.5
+    cdf = stats.norm.cdf(edges, loc=mean, scale=max(sd, 1e-6))
+    cdf[0], cdf[-1] = 0.0, 1.0  # counts below 0 and above kmax fold into the ends
+    return np.diff(cdf)
+
+
+def census_series(state: UnitState, end: datetime, days: int) -> pd.Series:
+    """Occupancy at each census instant of the ``days`` local days up to ``end``."""
+    instants = census_instants_after(end - timedelta(days=days + 1), state.census_time,
+                                     state.tz, days + 2)
+    instants = [h for h in instants if h <= end][-days:]
+    return pd.Series([state.occupancy_at(pd.Timestamp(h)) for h in instants],
+                     index=pd.DatetimeIndex(instants))
+
+
+def _baselines(known: UnitState, record: ModelRecord, instants: list[datetime],
+               history: pd.Series) -> dict[str, list[np.ndarray]]:
+    """The five baselines' pmfs at each instant, from what ``known`` knew."""
+    n = len(instants)
+    out: dict[str, list[np.ndarray]] = {}
+    last = int(history.iloc[-1])
+    values = history.to_numpy()
+    out["yesterday"] = []
+    for k in range(1, n + 1):
+        changes = values[k:] - values[:-k]
+        out["yesterday"].append(_empirical_pmf(last + changes[-182:]))
+    out["same_weekday"] = []
+    for h in instants:
+        same = history[[i.weekday() == h.astimezone(known.tz).weekday()
+                        for i in history.index.tz_convert(known.tz)]]
+        out["same_weekday"].append(_empirical_pmf(same.to_numpy()[-8:]))
+
+    los = LosModel.from_payload(record.payload)
+    current = known.current_stays()
+    census_at = np.array([(pd.Timestamp(h) - known.as_of).value / 86_400e9 for h in instants])
+    # mean_stay: deterministic departures, Morrow's arrivals.
+    morrow_like = forecast_inputs(known, record, n)
+    groups = los.groups.group_of(los.design.covariate_matrix(current)) if len(current) else []
+    leave = np.array([los.groups.get(int(g)).distribution.conditional(float(d)).mean()
+                      for g, d in zip(groups, current["days_in"], strict=True)])
+    p_det = (leave[:, None] > census_at[None, :]).astype(float) if len(current) else np.zeros((0, n))
+    det_days = occupancy_days(p_det, morrow_like.booked, morrow_like.streams, census_at,
+                              [None] * n)
+    out["mean_stay"] = [d.pmf for d in det_days]
+    # one_distribution: one KM for everyone, constant Poisson arrivals.
+    hist = known.history()
+    km = kaplan_meier(hist["los_days"].clip(lower=0).to_numpy(), hist["event"].to_numpy())
+    spent = current["days_in"].to_numpy()
+    s_now = np.maximum(km.sf(spent), 1e-12)
+    p_km = (km.sf(spent[:, None] + census_at[None, :]) / s_now[:, None]) if len(current) else np.zeros((0, n))
+    year_ago = known.as_of - pd.Timedelta(days=365)
+    recent = hist.loc[hist["admitted_at"] > max(year_ago, hist["admitted_at"].min())]
+    span = max((known.as_of - recent["admitted_at"].min()).total_seconds() / 86400, 1.0)
+    rate = len(recent) / span
+    slots = np.arange(1, int(math.ceil(census_at[-1] * 24)) + 1) / 24 - 1 / 48
+    stream = ArrivalStream("emergency", tuple(slots), tuple([rate / 24] * slots.size),
+                           tuple((slots // 1).astype(int)), None, _KmStay(km))
+    km_days = occupancy_days(p_km, BookedAdmissions((), (), ()), [stream], census_at, [None] * n)
+    out["one_distribution"] = [d.pmf for d in km_days]
+    # time_series: SARIMAX on the last year of daily census.
+    out["time_series"] = _sarimax(history.to_numpy()[-365:], n, kmax=int(values.max() * 2 + 10))
+    return out
+
+
+class _KmStay:
+    """A Kaplan-Meier curve used as a stay distribution (survival only)."""
+
+    def __init__(self, km: Any) -> None:
+        self.km = km
+
+    def sf(self, x: Any) -> np.ndarray:
+        return np.asarray(self.km.sf(np.asarray(x, dtype=float)), dtype=float)
+
+
+def _sarimax(series: np.ndarray, steps: int, kmax: int) -> list[np.ndarray]:
+    from statsmodels.tsa.statespace.sarimax import SARIMAX
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        fit = SARIMAX(series.astype(float), order=(1, 0, 0), seasonal_order=(1, 0, 0, 7),
+                      trend="c").fit(disp=False)
+        prediction = fit.get_forecast(steps)
+    means = np.asarray(prediction.predicted_mean)
+    sds = np.sqrt(np.asarray(prediction.var_pred_mean))
+    return [_normal_pmf(m, s, kmax) for m, s in zip(means, sds, strict=True)]
+
+
+def run_backtest(session: Session, unit: str, start: date, end: date, tz: ZoneInfo, *,
+                 days: int = 7, at: time = time(8, 0), retrain_days: int = 28,
+                 progress: Progress | None = None) -> dict[str, Any]:
+    """Forecast each local day from ``start`` to ``end`` at clock time ``at``; score all methods."""
+    if end < start:
+        raise ValueError(f"end {end} is before start {start}")
+    mornings = [localize(datetime.combine(start + timedelta(days=i), at), tz).astimezone(UTC)
+                for i in range((end - start).days + 1)]
+    last_needed = census_instants_after(mornings[-1], _census_time(session, unit), tz, days)[-1]
+    full = load_state(session, unit, last_needed + timedelta(hours=1), tz, with_history=True)
+    history_all = census_series(full, last_needed, (last_needed - mornings[0]).days + 400)
+    scored = {m: Scored() for m in METHODS}
+    record: ModelRecord | None = None
+    trained_on: datetime | None = None
+    for i, morning in enumerate(mornings):
+        known = state_as_of(full, morning)
+        if trained_on is None or (morning - trained_on).days >= retrain_days:
+            if progress:
+                progress(i, len(mornings), f"training on what was known at {morning:%Y-%m-%d}")
+            payload = train_los(known)
+            payload["arrivals"] = train_arrivals(known)
+            record = ModelRecord(f"backtest-{morning:%Y%m%d}", morning, payload)
+            trained_on = morning
+        assert record is not None
+        result = forecast_from_state(known, record, days=days, paths=0)
+        instants = [datetime.fromisoformat(d["census_at"]) for d in result["days"]]
+        outcomes = [full.occupancy_at(pd.Timestamp(h)) for h in instants]
+        history = history_all[history_all.index <= pd.Timestamp(morning)]
+        pmfs = {"morrow": [np.asarray(d["pmf"]) for d in result["days"]],
+                **_baselines(known, record, instants, history)}
+        for method, per_day in pmfs.items():
+            for k, (pmf, y) in enumerate(zip(per_day, outcomes, strict=True), start=1):
+                scored[method].horizon.append(k)
+                scored[method].pmf.append(pmf / pmf.sum())
+                scored[method].outcome.append(int(y))
+        if progress:
+            progress(i + 1, len(mornings), f"{morning:%Y-%m-%d}")
+    return summarise(unit, start, end, days, scored)
+
+
+def _census_time(session: Session, unit: str) -> time:
+    from app.store import repo
+    from app.timeutil import parse_clock
+
+    found = repo.get_unit(session, unit)
+    if found is None:
+        raise LookupError(f"unit {unit!r} is not known")
+    return parse_clock(found.census_time)
+
+
+def _scores(s: Scored, rows: np.ndarray, rng: np.random.Generator) -> dict[str, float]:
+    pmfs = [s.pmf[i] for i in rows]
+    y = np.array([s.outcome[i] for i in rows])
+    width = max(max(p.size for p in pmfs), int(y.max()) + 1)
+    matrix = np.zeros((len(pmfs), width))
+    for j, p in enumerate(pmfs):
+        matrix[j, : p.size] = p
+    matrix /= matrix.sum(axis=1, keepdims=True)
+    pit = np.asarray(randomised_pit(matrix, y, rng=rng))
+    q = np.array([pmf_quantile(p, [0.025, 0.1, 0.5, 0.9, 0.975]) for p in matrix])
+    return {
+        "n": int(len(rows)),
+        "crps": float(np.mean(crps_pmf(matrix, y))),
+        "mae_median": float(np.mean(np.abs(q[:, 2] - y))),
+        "coverage_80": float(np.mean((q[:, 1] <= y) & (y <= q[:, 3]))),
+        "coverage_95": float(np.mean((q[:, 0] <= y) & (y <= q[:, 4]))),
+        "log_score": float(np.mean(log_score(matrix, y))),
+        "pit_80": float(np.mean((pit >= 0.1) & (pit <= 0.9))),
+        "pit_95": float(np.mean((pit >= 0.025) & (pit <= 0.975))),
+    }
+
+
+def summarise(unit: str, start: date, end: date, days: int,
+              scored: dict[str, Scored]) -> dict[str, Any]:
+    rng = np.random.default_rng(20261201)
+    table: dict[str, Any] = {}
+    pits: dict[str, list[float]] = {}
+    for method, s in scored.items():
+        horizons = np.asarray(s.horizon)
+        table[method] = {
+            "by_horizon": [_scores(s, np.flatnonzero(horizons == k), rng)
+                           for k in range(1, days + 1)],
+            "all": _scores(s, np.arange(horizons.size), rng),
+        }
+        width = max(max(p.size for p in s.pmf), max(s.outcome) + 1)
+        matrix = np.zeros((len(s.pmf), width))
+        for j, p in enumerate(s.pmf):
+            matrix[j, : p.size] = p
+        pits[method] = [float(v) for v in randomised_pit(matrix, np.asarray(s.outcome), rng=rng)]
+    return {"unit": unit, "from": start.isoformat(), "to": end.isoformat(), "days": days,
+            "methods": table, "pit": pits}
+
+
+def text_progress(done: int, total: int, what: str) -> None:
+    width = 30
+    filled = int(width * done / max(total, 1))
+    sys.stderr.write(f"\r[{'#' * filled}{'.' * (width - filled)}] {done}/{total} {what:<45}")
+    if done >= total:
+        sys.stderr.write("\n")
+    sys.stderr.flush()
+
+
+def store_backtest(session: Session, result: dict[str, Any]) -> int:
+    """Keep a backtest's summary for the model page."""
+    import json
+
+    from app.store.models import BacktestRun
+
+    row = BacktestRun(unit=result["unit"], date_from=date.fromisoformat(result["from"]),
+                      date_to=date.fromisoformat(result["to"]), days=int(result["days"]),
+                      result=json.dumps(result, allow_nan=False))
+    session.add(row)
+    session.flush()
+    return row.id

@@ -1,0 +1,236 @@
+"""Services: train a unit's model and forecast its occupancy, as the contract's JSON.
+
+The forecast uses the newest model whose ``trained_until`` is not after ``as_of`` and reads
+data only through the "as of" state, so a forecast for a past instant equals the one that
+would have been made then from the same data.
+"""
+
+from __future__ import annotations
+
+import json
+from dataclasses import dataclass
+from datetime import UTC, date, datetime, time, timedelta
+from typing import Any
+from zoneinfo import ZoneInfo
+
+import numpy as np
+import pandas as pd
+from sqlalchemy.orm import Session
+
+from app.forecast.arrivals import MAX_LEAD, emergency_rate, train_arrivals
+from app.forecast.los import LosModel, predict_stays, train_los
+from app.forecast.models import newest_model, save_model
+from app.state import UnitState, load_state
+from app.stats.occupancy import (
+    ArrivalStream,
+    BookedAdmissions,
+    StayMixture,
+    day_to_json,
+    occupancy_days,
+    simulate_paths,
+)
+from app.store.models import StoredForecast
+from app.timeutil import census_instants_after, iso, localize
+
+FORMAT = 1
+DEFAULT_DAYS = 7
+WEEK_PATHS = 5000
+NS_PER_DAY = 86_400e9
+
+
+class NoModel(LookupError):
+    """No trained model may be used for this instant."""
+
+
+@dataclass(frozen=True)
+class ModelRecord:
+    id: str
+    trained_until: datetime
+    payload: dict[str, Any]
+
+
+def train_model(session: Session, unit: str, until: datetime, tz: ZoneInfo,
+                *, test_days: float | None = None) -> tuple[str, dict[str, Any]]:
+    """Fit the length-of-stay and arrivals models on what was known at ``until``; store them."""
+    state = load_state(session, unit, until, tz, with_history=True)
+    payload = train_los(state, test_days=test_days)
+    payload["arrivals"] = train_arrivals(state)
+    model_id = save_model(session, unit, state.as_of.to_pydatetime(), payload)
+    return model_id, payload
+
+
+def model_for(session: Session, unit: str, as_of: datetime) -> ModelRecord:
+    found = newest_model(session, unit, as_of)
+    if found is None:
+        raise NoModel(f"no model of unit {unit} was trained until {as_of.isoformat()} or "
+                      f"earlier; run: morrow train --unit {unit} --until {as_of.isoformat()}")
+    return ModelRecord(*found)
+
+
+def _days_after(instant: datetime, as_of: pd.Timestamp) -> float:
+    return (pd.Timestamp(instant) - as_of).value / NS_PER_DAY
+
+
+def _hourly_stream(name: str, state: UnitState, first_day: date, day_means: list[float],
+                   profile: list[float], size: float | None, stay: Any) -> ArrivalStream:
+    at, mean, day = [], [], []
+    for d, day_mean in enumerate(day_means):
+        local_day = first_day + timedelta(days=d)
+        for hour, share in enumerate(profile):
+            instant = localize(datetime.combine(local_day, time(hour, 30)), state.tz)
+            offset = _days_after(instant, state.as_of)
+            if offset > 0 and day_mean * share > 0:
+                at.append(offset)
+                mean.append(day_mean * share)
+                day.append(d)
+    return ArrivalStream(name, tuple(at), tuple(mean), tuple(day), size, stay)
+
+
+def _newcomer_stay(los: LosModel, admission_type: str) -> StayMixture:
+    parts = [(g.share.get(admission_type, 0.0), g.distribution) for g in los.groups.groups]
+    parts = [(w, d) for w, d in parts if w > 0] or [(1.0, g.distribution)
+                                                    for g in los.groups.groups]
+    return StayMixture(tuple(w for w, _ in parts), tuple(d for _, d in parts))
+
+
+def _admit_hour(profile: list[float]) -> float:
+    """The median clock hour of elective admissions (slot midpoint)."""
+    cumulative = np.cumsum(profile)
+    return float(np.searchsorted(cumulative, 0.5)) + 0.5
+
+
+def _booked(state: UnitState, los: LosModel, elective: dict[str, Any], last_day: date
+            ) -> BookedAdmissions:
+    bookings = state.open_bookings()
+    bookings = bookings.loc[bookings["planned_date"] <= last_day]
+    if bookings.empty:
+        return BookedAdmissions((), (), ())
+    today = state.as_of.tz_convert(state.tz).date()
+    frame = bookings.assign(admission_type="elective")
+    groups = los.groups.group_of(los.design.covariate_matrix(frame))
+    p_go_by_lead = elective["p_go_by_lead"]
+    hour = _admit_hour(elective["hour_profile"])
+    p_go, admit_at, stays = [], [], []
+    for planned, group in zip(bookings["planned_date"], groups, strict=True):
+        lead = min((planned - today).days, MAX_LEAD)
+        when = localize(datetime.combine(planned, time(0)) + timedelta(hours=hour), state.tz)
+        # A booking for today whose usual admission hour has passed may still come.
+        offset = max(_days_after(when, state.as_of), 1 / 24)
+        p_go.append(float(p_go_by_lead[lead]))
+        admit_at.append(offset)
+        stays.append(los.groups.get(int(group)).distribution)
+    return BookedAdmissions(tuple(p_go), tuple(admit_at), tuple(stays))
+
+
+def forecast(session: Session, unit: str, as_of: datetime, tz: ZoneInfo, *,
+             days: int = DEFAULT_DAYS, paths: int = WEEK_PATHS, seed: int = 0) -> dict[str, Any]:
+    """The forecast JSON (``"format": 1``, DATA_CONTRACT.md) for ``unit`` at ``as_of``."""
+    if days < 1:
+        raise ValueError(f"days: must be at least 1, got {days}")
+    as_of = as_of.astimezone(UTC)
+    record = model_for(session, unit, as_of)
+    state = load_state(session, unit, as_of, tz, with_history=False)
+    return forecast_from_state(state, record, days=days, paths=paths, seed=seed)
+
+
+@dataclass(frozen=True, eq=False)
+class ForecastInputs:
+    """Everything the occupancy distribution is computed from, for one unit and as_of."""
+
+    instants: list[datetime]
+    census_at: np.ndarray
+    local_days: list[date]
+    beds: list[int | None]
+    predictions: Any
+    booked: BookedAdmissions
+    streams: list[ArrivalStream]
+
+
+def forecast_inputs(state: UnitState, record: ModelRecord, days: int) -> ForecastInputs:
+    """Per-stay probabilities, known bookings and the arrival streams for the next ``days``."""
+    los = LosModel.from_payload(record.payload)
+    arrivals = record.payload["arrivals"]
+    instants = census_instants_after(state.as_of.to_pydatetime(), state.census_time, state.tz,
+                                     days)
+    local_days = [h.astimezone(state.tz).date() for h in instants]
+    today = state.as_of.tz_convert(state.tz).date()
+    span = [today + timedelta(days=d) for d in range((local_days[-1] - today).days + 1)]
+    rate = emergency_rate(arrivals)
+    emergency = _hourly_stream("emergency", state, today, list(rate.mean(span)),
+                               arrivals["emergency"]["hour_profile"], rate.size,
+                               _newcomer_stay(los, "emergency"))
+    unbooked_table = arrivals["elective"]["unbooked_by_weekday_lead"]
+    unbooked_means = [unbooked_table[d.weekday()][min((d - today).days, MAX_LEAD)] for d in span]
+    unbooked = _hourly_stream("elective", state, today, unbooked_means,
+                              arrivals["elective"]["hour_profile"], None,
+                              _newcomer_stay(los, "elective"))
+    return ForecastInputs(
+        instants=instants,
+        census_at=np.array([_days_after(h, state.as_of) for h in instants]),
+        local_days=local_days,
+        beds=[state.beds_on(d) for d in local_days],
+        predictions=predict_stays(los, state, instants),
+        booked=_booked(state, los, arrivals["elective"], local_days[-1]),
+        streams=[emergency, unbooked],
+    )
+
+
+def expected_admissions(inputs: ForecastInputs) -> list[float]:
+    """Expected admissions between consecutive census instants (the first from as_of)."""
+    out = []
+    start = 0.0
+    booked_at = np.asarray(inputs.booked.admit_at, dtype=float)
+    p_go = np.asarray(inputs.booked.p_go, dtype=float)
+    for end in inputs.census_at:
+        total = float(p_go[(booked_at > start) & (booked_at <= end)].sum())
+        for stream in inputs.streams:
+            at = np.asarray(stream.slot_at)
+            total += float(np.asarray(stream.slot_mean)[(at > start) & (at <= end)].sum())
+        out.append(total)
+        start = end
+    return out
+
+
+def forecast_from_state(state: UnitState, record: ModelRecord, *, days: int = DEFAULT_DAYS,
+                        paths: int = WEEK_PATHS, seed: int = 0) -> dict[str, Any]:
+    """The forecast from an already loaded state (the page reuses it after a score entry)."""
+    return forecast_with_inputs(state, record, days=days, paths=paths, seed=seed)[0]
+
+
+def forecast_with_inputs(state: UnitState, record: ModelRecord, *, days: int = DEFAULT_DAYS,
+                         paths: int = WEEK_PATHS, seed: int = 0
+                         ) -> tuple[dict[str, Any], ForecastInputs]:
+    """The forecast JSON and the inputs it was computed from (for the page's day table)."""
+    inputs = forecast_inputs(state, record, days)
+    p_present = inputs.predictions.p_present
+    results = occupancy_days(p_present, inputs.booked, inputs.streams, inputs.census_at,
+                             inputs.beds)
+    out_days = []
+    for instant, local_day, bed_count, result in zip(inputs.instants, inputs.local_days,
+                                                     inputs.beds, results, strict=True):
+        out_days.append({"date": local_day.isoformat(), "census_at": iso(instant, state.tz),
+                         "beds": bed_count, **day_to_json(result)})
+    payload: dict[str, Any] = {
+        "format": FORMAT,
+        "unit": state.unit,
+        "as_of": iso(state.as_of.to_pydatetime(), state.tz),
+        "model": {"id": record.id, "trained_until": iso(record.trained_until, state.tz)},
+        "days": out_days,
+        "stays": inputs.predictions.records(),
+    }
+    if paths > 0 and all(b is not None for b in inputs.beds):
+        sims = simulate_paths(p_present, inputs.booked, inputs.streams, inputs.census_at, paths,
+                              np.random.default_rng(seed))
+        payload["p_over_capacity_any_day"] = float(
+            np.mean((sims > np.asarray(inputs.beds)[None, :]).any(axis=1)))
+    return payload, inputs
+
+
+def store_forecast(session: Session, payload: dict[str, Any], origin: str) -> int:
+    """Keep a forecast as shown, to compare with the census that follows."""
+    row = StoredForecast(unit=payload["unit"], as_of=datetime.fromisoformat(payload["as_of"]),
+                         model_id=payload["model"]["id"], origin=origin,
+                         payload=json.dumps(payload, allow_nan=False))
+    session.add(row)
+    session.flush()
+    return row.id

@@ -1,0 +1,51 @@
+"""Re-running a whole transaction when SQLite reports the database busy.
+
+SQLite lets one writer in at a time. A writer waits up to the busy timeout
+(``db.BUSY_TIMEOUT_MS``) for the lock; past it, or when waiting could deadlock, it fails
+with "database is locked". The transaction has then been rolled back entirely, so running
+the same unit of work again from the start is safe: this is the one retry we make.
+Imports are idempotent too, so a retried import can never store a row twice.
+"""
+
+from __future__ import annotations
+
+import random
+import time
+from collections.abc import Callable
+from typing import TypeVar
+
+from sqlalchemy.exc import OperationalError
+from sqlalchemy.orm import Session
+
+from app.store import db
+
+T = TypeVar("T")
+
+BUSY_MESSAGES = ("database is locked", "database is busy", "database table is locked")
+
+
+def is_busy(exc: BaseException) -> bool:
+    """Whether ``exc`` is SQLite's "busy/locked" answer (and not a real failure)."""
+    return isinstance(exc, OperationalError) and any(
+        text in str(exc.orig).lower() for text in BUSY_MESSAGES)
+
+
+def run_transaction(url: str, work: Callable[[Session], T], *, attempts: int = 5,
+                    pause_s: float = 0.05) -> T:
+    """Run ``work`` in one transaction (``db.session_scope``), again if the database was busy.
+
+    ``work`` must do nothing outside the database that cannot be repeated: it may run up
+    to ``attempts`` times, and only the last run's transaction is committed.
+    """
+    if attempts < 1:
+        raise ValueError(f"attempts must be at least 1, got {attempts}")
+    for attempt in range(1, attempts + 1):
+        try:
+            with db.session_scope(url) as session:
+                return work(session)
+        except OperationalError as exc:
+            if not is_busy(exc) or attempt == attempts:
+                raise
+            # Jittered back-off so writers that collided do not collide again in step.
+            time.sleep(pause_s * (2 ** (attempt - 1)) * (0.5 + random.random()))
+    raise AssertionError("unreachable")  # the loop returns or raises

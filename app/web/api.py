@@ -1,0 +1,84 @@
+"""The HTTP API: the forecast JSON of the data contract, and score entry for scripts."""
+
+from __future__ import annotations
+
+from typing import Annotated, Any
+
+from fastapi import APIRouter, HTTPException, Query
+from pydantic import BaseModel, Field
+
+from app.config import current_time, get_settings
+from app.forecast.service import NoModel, forecast
+from app.ingest import ImportRefused, import_file
+from app.store import repo
+from app.timeutil import parse_timestamp
+from app.web.deps import SessionDep
+from app.web.forecasts import current
+from app.web.pages import _one_row_csv
+from app.web.security import ReadActor, ScoresActor
+
+router = APIRouter(prefix="/api")
+
+
+@router.get("/units")
+def units(session: SessionDep, actor: ReadActor) -> list[dict[str, Any]]:
+    """Units with their census time and bed plan."""
+    return [{"unit": u.code, "census_time": u.census_time,
+             "beds": [{"valid_from": None if v is None else v.isoformat(), "beds": b}
+                      for v, b in repo.bed_plan(session, u.code)]}
+            for u in repo.list_units(session)]
+
+
+@router.get("/units/{unit}/forecast")
+def unit_forecast(unit: str, session: SessionDep, actor: ReadActor,
+                  as_of: str | None = None,
+                  days: Annotated[int, Query(ge=1, le=28)] = 7) -> dict[str, Any]:
+    """The forecast JSON (format 1) from ``as_of`` (default: now) for the next ``days``."""
+    if repo.get_unit(session, unit) is None:
+        raise HTTPException(status_code=404, detail=f"unit {unit} is not known")
+    if as_of is None:
+        shown = current(session, unit, days=days)
+        if shown.forecast is None:
+            raise HTTPException(status_code=409, detail=shown.problem)
+        return shown.forecast
+    try:
+        moment = parse_timestamp(as_of, get_settings().tz)
+    except ValueError:
+        raise HTTPException(status_code=422,
+                            detail=f"as_of {as_of!r} is not an ISO 8601 timestamp") from None
+    try:
+        return forecast(session, unit, moment, get_settings().tz, days=days)
+    except NoModel as exc:
+        raise HTTPException(status_code=409, detail=str(exc)) from None
+
+
+class ScoreIn(BaseModel):
+    stay_id: str = Field(min_length=1, max_length=64)
+    name: str = Field(min_length=1, max_length=64)
+    value: float
+    observed_at: str | None = None
+
+
+@router.post("/units/{unit}/observations", status_code=201)
+def post_observation(unit: str, body: ScoreIn, session: SessionDep,
+                     actor: ScoresActor) -> dict[str, Any]:
+    """Record one score or flag; returns that stay's updated prediction."""
+    if repo.get_unit(session, unit) is None:
+        raise HTTPException(status_code=404, detail=f"unit {unit} is not known")
+    now = current_time().replace(microsecond=0)
+    observed = body.observed_at or now.isoformat()
+    data = _one_row_csv(["stay_id", "observed_at", "name", "value", "recorded_at"],
+                        [body.stay_id, observed, body.name, repr(body.value), now.isoformat()])
+    if body.stay_id not in set(current(session, unit).state.current_stays()["stay_id"]):
+        raise HTTPException(status_code=422, detail=f"{body.stay_id} is not in {unit} now")
+    try:
+        import_file(session, "observations", data, "api", tz=get_settings().tz,
+                    actor=actor.username)
+    except ImportRefused as refused:
+        raise HTTPException(status_code=422, detail=[
+            {"column": p.column, "value": p.value, "why": p.why} for p in refused.problems]) from None
+    session.flush()
+    shown = current(session, unit)
+    stay = next((s for s in (shown.forecast or {}).get("stays", [])
+                 if s["stay_id"] == body.stay_id), None)
+    return {"recorded": True, "stay": stay}

@@ -1,0 +1,251 @@
+"""The unit page (morning huddle), score entry, booking check and data upload."""
+
+from __future__ import annotations
+
+import csv
+import io
+import json
+from datetime import date, datetime, timedelta
+from typing import Annotated, Any
+
+from fastapi import APIRouter, File, Form, HTTPException, Query, Request, UploadFile
+from fastapi.responses import HTMLResponse, RedirectResponse, Response
+from sqlalchemy import select
+
+from app.config import current_time, get_settings
+from app.forecast.booking_check import Candidate, booking_check
+from app.forecast.service import model_for
+from app.ingest import KINDS, ImportRefused, import_file
+from app.ingest.importer import SCORE_RANGES
+from app.store import repo
+from app.store.models import ImportBatch
+from app.web import figures
+from app.web.deps import SessionDep
+from app.web.forecasts import Shown, current
+from app.web.security import BookingsActor, DataActor, ReadActor, ScoresActor
+from app.web.templating import templates
+
+router = APIRouter()
+
+SCORE_CHOICES = ("sofa", "news2", "apache_ii", "fit_for_discharge")
+
+
+def _unit_or_404(session: SessionDep, unit: str) -> None:
+    if repo.get_unit(session, unit) is None:
+        raise HTTPException(status_code=404, detail=f"unit {unit} is not known")
+
+
+def _day_rows(shown: Shown) -> list[dict[str, Any]]:
+    """Each census day with its bands, risk and expected admissions and discharges."""
+    forecast = shown.forecast
+    assert forecast is not None
+    previous = float(shown.state.occupancy_at(shown.state.as_of))
+    rows = []
+    admissions = shown.admissions or [None] * len(forecast["days"])
+    for day, admitted in zip(forecast["days"], admissions, strict=True):
+        q = day["quantiles"]
+        row = {"date": day["date"], "census_at": day["census_at"], "beds": day["beds"],
+               "median": q["0.5"], "band80": (q["0.1"], q["0.9"]),
+               "band95": (q["0.025"], q["0.975"]), "mean": day["mean"],
+               "p_over": day["p_over_capacity"], "admissions": admitted,
+               "discharges": None if admitted is None else previous + admitted - day["mean"]}
+        previous = day["mean"]
+        rows.append(row)
+    return rows
+
+
+def _patients(session: SessionDep, shown: Shown) -> list[dict[str, Any]]:
+    forecast = shown.forecast
+    current_stays = shown.state.current_stays()
+    beds = repo.latest_beds(session, shown.state.unit, list(current_stays["stay_id"]))
+    predictions = {s["stay_id"]: s for s in (forecast or {}).get("stays", [])}
+    names = [n for n in SCORE_CHOICES if n in current_stays.columns and n != "fit_for_discharge"]
+    out = []
+    for row in current_stays.itertuples(index=False):
+        stay = row._asdict()
+        prediction = predictions.get(stay["stay_id"], {})
+        p = prediction.get("p_present", [])
+        score_name = next((n for n in names if stay.get(n) == stay.get(n)), None)  # not NaN
+        out.append({
+            "stay_id": stay["stay_id"], "bed": beds.get(stay["stay_id"], ""),
+            "days_in": stay["days_in"], "admission_type": stay["admission_type"],
+            "score_name": score_name,
+            "score": None if score_name is None else stay[score_name],
+            "score_hours": None if score_name is None else stay[f"{score_name}_hours"],
+            "fit_for_discharge": stay.get("fit_for_discharge") == 1.0,
+            "p_tonight": p[0] if p else None, "p_day3": p[2] if len(p) > 2 else None,
+            "median_remaining": prediction.get("median_remaining_days"),
+            "group": prediction.get("group", ""),
+        })
+    out.sort(key=lambda r: (r["p_tonight"] if r["p_tonight"] is not None else 2))
+    return out
+
+
+@router.get("/units/{unit}", response_class=HTMLResponse)
+def unit_page(request: Request, unit: str, session: SessionDep, actor: ReadActor,
+              entered: str | None = None, message: str | None = None) -> Response:
+    """The huddle page: tonight, the week, the patients, score entry and booking check."""
+    _unit_or_404(session, unit)
+    shown = current(session, unit)
+    state = shown.state
+    now_local = state.as_of.tz_convert(state.tz)
+    beds_now = state.beds_on(now_local.date())
+    occupied = state.occupancy_at(state.as_of)
+    latest_census = repo.latest_snapshot_at(session, unit)
+    context: dict[str, Any] = {
+        "unit": unit, "as_of": state.as_of.to_pydatetime(), "beds_now": beds_now,
+        "occupied": occupied, "free": None if beds_now is None else beds_now - occupied,
+        "problem": shown.problem, "forecast": shown.forecast, "entered": entered,
+        "message": message, "patients": shown.view("patients", lambda: _patients(session, shown)),
+        "score_choices": SCORE_CHOICES, "score_ranges": SCORE_RANGES,
+        "latest_census": latest_census,
+        "stale_hours": _stale_hours(latest_census, state.as_of.to_pydatetime()),
+        "units": [u.code for u in repo.list_units(session)],
+        "today": now_local.date().isoformat(),
+    }
+    if shown.forecast is not None:
+        context["days"] = shown.view("days", lambda: _day_rows(shown))
+        context["tonight"] = shown.forecast["days"][0]
+        context["fan_json"] = shown.view("fan", lambda: json.dumps(figures.fan_chart(
+            shown.forecast, occupied, f"now {now_local:%H:%M}")))
+    return templates.TemplateResponse(request, "unit.html", context)
+
+
+STALE_AFTER = timedelta(hours=26)
+
+
+def _stale_hours(latest_census: datetime | None, as_of: datetime) -> int | None:
+    """Hours since the latest census when more than a day has passed (common practice)."""
+    if latest_census is None or as_of - latest_census <= STALE_AFTER:
+        return None
+    return int((as_of - latest_census).total_seconds() // 3600)
+
+
+def _one_row_csv(header: list[str], values: list[Any]) -> bytes:
+    out = io.StringIO()
+    writer = csv.writer(out, lineterminator="\n")
+    writer.writerow(header)
+    writer.writerow(["" if v is None else v for v in values])
+    return out.getvalue().encode("utf-8")
+
+
+@router.post("/units/{unit}/scores")
+def enter_score(unit: str, session: SessionDep, actor: ScoresActor,
+                stay_id: Annotated[str, Form()], name: Annotated[str, Form()],
+                value: Annotated[str, Form()]) -> Response:
+    """A score or flag from the nurse in charge, through the same checks as an import."""
+    _unit_or_404(session, unit)
+    now = current_time().replace(microsecond=0)
+    current_ids = set(current(session, unit).state.current_stays()["stay_id"])
+    if stay_id not in current_ids:
+        return _back(unit, f"{stay_id} is not in {unit} now; nothing was recorded", stay_id)
+    data = _one_row_csv(["stay_id", "observed_at", "name", "value", "recorded_at"],
+                        [stay_id, now.isoformat(), name.strip().lower(), value.strip(),
+                         now.isoformat()])
+    try:
+        import_file(session, "observations", data, "score entry form", tz=get_settings().tz,
+                    actor=actor.username)
+    except ImportRefused as refused:
+        why = "; ".join(f"{p.column}: {p.why}" for p in refused.problems)
+        return _back(unit, f"not recorded: {why}", stay_id)
+    return _back(unit, f"{name} {value} recorded for {stay_id}", stay_id)
+
+
+def _back(unit: str, message: str, stay_id: str | None = None) -> RedirectResponse:
+    from urllib.parse import urlencode
+
+    query = urlencode({"message": message, **({"entered": stay_id} if stay_id else {})})
+    anchor = f"#stay-{stay_id}" if stay_id else ""
+    return RedirectResponse(f"/units/{unit}?{query}{anchor}", status_code=303)
+
+
+@router.get("/units/{unit}/booking", response_class=HTMLResponse)
+def booking_page(request: Request, unit: str, session: SessionDep, actor: ReadActor,
+                 planned_date: date | None = None, age: Annotated[int | None, Query(ge=0, le=120)] = None,
+                 specialty: str | None = None, procedure: str | None = None,
+                 message: str | None = None) -> Response:
+    """Booking check for the surgical scheduler, with the next 14 days to choose from."""
+    _unit_or_404(session, unit)
+    shown = current(session, unit)
+    context: dict[str, Any] = {"unit": unit, "message": message, "problem": shown.problem,
+                               "result": None, "specialties": _specialties(shown),
+                               "form": {"planned_date": planned_date, "age": age,
+                                        "specialty": specialty, "procedure": procedure},
+                               "today": shown.state.as_of.tz_convert(shown.state.tz).date()}
+    if planned_date is not None and shown.forecast is not None:
+        today = context["today"]
+        if planned_date < today or planned_date > today + timedelta(days=60):
+            context["message"] = "choose a planned date from today to 60 days ahead"
+        else:
+            record = model_for(session, unit, shown.state.as_of.to_pydatetime())
+            result = booking_check(shown.state, record, Candidate(
+                planned_date, age, (specialty or "").strip().lower() or None,
+                (procedure or "").strip().lower() or None))
+            context["result"] = result
+            context["strip_json"] = json.dumps(figures.booking_strip(result["strip"]))
+    return templates.TemplateResponse(request, "booking.html", context)
+
+
+def _specialties(shown: Shown) -> list[str]:
+    values = shown.state.bookings["specialty"].dropna().unique().tolist()
+    return sorted(str(v) for v in values)
+
+
+@router.post("/units/{unit}/booking")
+def book(unit: str, session: SessionDep, actor: BookingsActor,
+         planned_date: Annotated[date, Form()], age: Annotated[str, Form()] = "",
+         specialty: Annotated[str, Form()] = "", procedure: Annotated[str, Form()] = "") -> Response:
+    """Store a booking so later forecasts include it."""
+    import secrets
+
+    _unit_or_404(session, unit)
+    booking_id = f"B-{secrets.token_hex(4)}"
+    now = current_time().replace(microsecond=0)
+    data = _one_row_csv(["booking_id", "unit", "booked_at", "planned_date", "age", "specialty",
+                         "procedure"],
+                        [booking_id, unit, now.isoformat(), planned_date.isoformat(), age.strip(),
+                         specialty.strip(), procedure.strip()])
+    try:
+        import_file(session, "bookings", data, "booking form", tz=get_settings().tz,
+                    actor=actor.username)
+    except ImportRefused as refused:
+        why = "; ".join(f"{p.column}: {p.why}" for p in refused.problems)
+        return RedirectResponse(f"/units/{unit}/booking?message=not booked: {why}", 303)
+    return RedirectResponse(
+        f"/units/{unit}/booking?message=booked {booking_id} for {planned_date.isoformat()}"
+        f"&planned_date={planned_date.isoformat()}&age={age}&specialty={specialty}"
+        f"&procedure={procedure}", status_code=303)
+
+
+@router.get("/data", response_class=HTMLResponse)
+def data_page(request: Request, session: SessionDep, actor: ReadActor) -> Response:
+    """Upload CSV files; import history; units and their staffed beds."""
+    return _render_data(request, session, None, None, None)
+
+
+def _render_data(request: Request, session: SessionDep, problems: Any, result: Any,
+                 kind: str | None, status: int = 200) -> Response:
+    batches = session.scalars(select(ImportBatch).order_by(ImportBatch.id.desc()).limit(30)).all()
+    units = [{"code": u.code, "census_time": u.census_time, "plan": repo.bed_plan(session, u.code)}
+             for u in repo.list_units(session)]
+    return templates.TemplateResponse(request, "data.html", {
+        "kinds": KINDS, "batches": batches, "units": units, "problems": problems,
+        "result": result, "kind": kind,
+        "max_mb": get_settings().max_upload_bytes // (1024 * 1024)}, status_code=status)
+
+
+@router.post("/data/upload", response_class=HTMLResponse)
+async def upload(request: Request, session: SessionDep, actor: DataActor,
+                 kind: Annotated[str, Form()], file: Annotated[UploadFile, File()]) -> Response:
+    """One CSV file, imported whole or not at all."""
+    if kind not in KINDS:
+        raise HTTPException(status_code=422, detail=f"kind must be one of {', '.join(KINDS)}")
+    data = await file.read()
+    name = (file.filename or f"{kind}.csv")[:200]
+    try:
+        result = import_file(session, kind, data, name, tz=get_settings().tz,
+                             actor=actor.username)
+    except ImportRefused as refused:
+        session.rollback()
+        return _render_data(request, session, refused.problems, None, kind, status=422)
+    return _render_data(request, session, None, result, kind)

@@ -1,0 +1,67 @@
+"""Helpers for tests of signed-in pages and API calls (invented users, fictional names).
+
+    from tests.security.fixtures import csrf, make_user, signed_in_client
+
+    make_user(db_url, "nurse.a", "nurse_in_charge", "a long password")
+    client = signed_in_client(create_app(db_url), "nurse.a", "a long password")
+    client.post("/some/form", data={"csrf_token": csrf(client), ...})
+"""
+
+from __future__ import annotations
+
+import re
+
+from fastapi import FastAPI
+from fastapi.testclient import TestClient
+
+from app.store import db
+from app.store import users as accounts
+from app.web.security import SESSION_COOKIE, _token
+
+# Tests hash with a cheaper scrypt cost than the service (2**17) so sign-ins stay fast;
+# the cost is stored in the hash, so verification follows it.
+TEST_LOG2_N = 12
+_CSRF_INPUT = re.compile(r'name="csrf_token" value="([^"]*)"')
+
+
+def make_user(db_url: str, username: str, role: str, password: str) -> None:
+    """Store an account (through the same function as `morrow users add`)."""
+    with db.session_scope(db_url) as session:
+        accounts.create_user(session, username, role, password, actor="test-fixture",
+                             password_hash=accounts.hash_password(password, log2_n=TEST_LOG2_N))
+
+
+def issue_token(db_url: str, username: str, label: str = "test client") -> str:
+    """A bearer token acting as ``username``."""
+    with db.session_scope(db_url) as session:
+        _, raw = accounts.issue_token(session, username, label, actor="test-fixture")
+    return raw
+
+
+def form_csrf(html: str) -> str:
+    """The CSRF token of the first form on a rendered page."""
+    found = _CSRF_INPUT.search(html)
+    assert found is not None and found.group(1), "the page has no form with a CSRF token"
+    return found.group(1)
+
+
+def signed_in_client(app: FastAPI, username: str, password: str) -> TestClient:
+    """A TestClient that signed in through the sign-in form and keeps its cookies."""
+    client = TestClient(app)
+    page = client.get("/signin")
+    assert page.status_code == 200, page.text
+    answer = client.post("/signin", data={"username": username, "password": password,
+                                          "csrf_token": form_csrf(page.text), "next": "/"},
+                         follow_redirects=False)
+    assert answer.status_code == 303, f"sign-in failed ({answer.status_code}): {answer.text}"
+    assert client.cookies.get(SESSION_COOKIE)
+    return client
+
+
+def csrf(client: TestClient) -> str:
+    """The CSRF token a page would render for this client's session."""
+    app = client.app
+    assert isinstance(app, FastAPI)
+    cookie = client.cookies.get(SESSION_COOKIE)
+    assert cookie, "the client is not signed in"
+    return _token(app.state.csrf_key, "session", cookie)

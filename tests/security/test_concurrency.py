@@ -1,0 +1,161 @@
+"""Writers at once: 8 entering scores and 2 importing files; every write stored exactly once.
+
+The scores are written as a score form will write them: one transaction holding the new
+observation and its audit event. Invented unit and stays.
+"""
+
+from __future__ import annotations
+
+import sqlite3
+import threading
+from datetime import UTC, datetime, timedelta
+from typing import Any
+
+import pytest
+from sqlalchemy import func, select
+from sqlalchemy.exc import OperationalError
+from sqlalchemy.orm import Session
+
+from app.ingest import import_file
+from app.store import db
+from app.store.audit import record_audit
+from app.store.models import AuditEvent, ImportBatch, Observation
+from app.store.retry import is_busy, run_transaction
+from tests.conftest import UTC_ZONE
+
+WRITERS, SCORES_EACH = 8, 25
+IMPORTERS, FILES_EACH, ROWS_PER_FILE = 2, 3, 400
+STAYS = 40
+T0 = datetime(2026, 3, 2, 8, 0, tzinfo=UTC)
+
+
+def seed(url: str) -> None:
+    stays = "\n".join(f"S-{i},U-CC,2026-03-01T00:00,emergency" for i in range(STAYS))
+    with db.session_scope(url) as session:
+        import_file(session, "units", b"unit,beds\nU-CC,50\n", "units.csv", tz=UTC_ZONE)
+        import_file(session, "stays", f"stay_id,unit,admitted_at,admission_type\n{stays}\n"
+                    .encode(), "stays.csv", tz=UTC_ZONE)
+
+
+def enter_score(session: Session, writer: int, k: int) -> None:
+    n = writer * SCORES_EACH + k
+    values = {"stay_id": f"S-{n % STAYS}", "observed_at": T0 + timedelta(minutes=n),
+              "name": "news2", "value": float(n % 21),
+              "recorded_at": T0 + timedelta(minutes=n)}
+    session.add(Observation(**values))
+    session.flush()
+    record_audit(session, f"nurse{writer}", "insert", "observation",
+                 f"{values['stay_id']}/news2/{values['observed_at'].isoformat()}", None, values,
+                 form="POST /units/{unit}/scores")
+
+
+def observation_file(importer: int, f: int) -> bytes:
+    start = T0 + timedelta(days=1 + importer * FILES_EACH + f)
+    lines = ["stay_id,observed_at,name,value"]
+    lines += [f"S-{i % STAYS},{(start + timedelta(minutes=i)).isoformat()},sofa,{i % 25}"
+              for i in range(ROWS_PER_FILE)]
+    return ("\n".join(lines) + "\n").encode()
+
+
+@pytest.mark.slow
+def test_eight_score_writers_and_two_importers(db_url: str) -> None:
+    seed(db_url)
+    start = threading.Barrier(WRITERS + IMPORTERS)
+    errors: list[BaseException] = []
+
+    def writer(w: int) -> None:
+        start.wait()
+        for k in range(SCORES_EACH):
+            run_transaction(db_url, lambda s, k=k: enter_score(s, w, k))
+
+    def importer(i: int) -> None:
+        start.wait()
+        for f in range(FILES_EACH):
+            data = observation_file(i, f)
+            run_transaction(db_url, lambda s, f=f, data=data: import_file(
+                s, "observations", data, f"obs-{i}-{f}.csv", tz=UTC_ZONE, actor=f"importer{i}"))
+
+    def guarded(target: Any, arg: int) -> None:
+        try:
+            target(arg)
+        except BaseException as exc:  # collected: a thread's failure must fail the test
+            errors.append(exc)
+
+    threads = [threading.Thread(target=guarded, args=(writer, w)) for w in range(WRITERS)]
+    threads += [threading.Thread(target=guarded, args=(importer, i)) for i in range(IMPORTERS)]
+    for t in threads:
+        t.start()
+    for t in threads:
+        t.join(timeout=120)
+    assert not any(t.is_alive() for t in threads)
+    assert not errors, errors
+
+    with db.session_scope(db_url) as session:
+        def count(query: Any) -> int:
+            return session.scalar(query) or 0
+
+        scores = count(select(func.count()).select_from(Observation)
+                       .where(Observation.name == "news2"))
+        distinct = count(select(func.count(func.distinct(Observation.observed_at)))
+                         .where(Observation.name == "news2"))
+        assert scores == distinct == WRITERS * SCORES_EACH
+        imported = count(select(func.count()).select_from(Observation)
+                         .where(Observation.name == "sofa"))
+        assert imported == IMPORTERS * FILES_EACH * ROWS_PER_FILE
+        per_writer = dict(session.execute(
+            select(AuditEvent.actor, func.count()).where(AuditEvent.entity == "observation")
+            .group_by(AuditEvent.actor)).all())
+        assert per_writer == {f"nurse{w}": SCORES_EACH for w in range(WRITERS)}
+        batches = session.execute(select(ImportBatch.filename, ImportBatch.inserted)
+                                  .where(ImportBatch.kind == "observations")).all()
+        assert sorted(batches) == sorted((f"obs-{i}-{f}.csv", ROWS_PER_FILE)
+                                         for i in range(IMPORTERS) for f in range(FILES_EACH))
+        assert session.execute(select(func.count()).select_from(ImportBatch)
+                               .where(ImportBatch.kind == "form")).scalar() == WRITERS * SCORES_EACH
+    path = db_url.removeprefix("sqlite:///")
+    with sqlite3.connect(path) as conn:
+        assert conn.execute("PRAGMA journal_mode").fetchone()[0] == "wal"
+        assert conn.execute("PRAGMA integrity_check").fetchone()[0] == "ok"
+
+
+def _busy() -> OperationalError:
+    return OperationalError("INSERT ...", {}, sqlite3.OperationalError("database is locked"))
+
+
+def test_busy_transaction_is_rerun_whole(db_url: str) -> None:
+    seed(db_url)
+    runs = []
+
+    def work(session: Session) -> str:
+        runs.append(len(runs))
+        enter_score(session, 0, 0)  # written, then thrown away with the failed transaction
+        if len(runs) == 1:
+            raise _busy()
+        return "stored"
+
+    assert run_transaction(db_url, work, pause_s=0.001) == "stored"
+    assert runs == [0, 1]
+    with db.session_scope(db_url) as session:
+        assert session.scalar(select(func.count()).select_from(Observation)) == 1
+        assert session.scalar(select(func.count()).select_from(AuditEvent)
+                              .where(AuditEvent.entity == "observation")) == 1
+
+
+def test_other_errors_are_not_retried(db_url: str) -> None:
+    runs = []
+
+    def work(session: Session) -> None:
+        runs.append(1)
+        raise OperationalError("SELECT", {}, sqlite3.OperationalError("no such table: x"))
+
+    with pytest.raises(OperationalError, match="no such table"):
+        run_transaction(db_url, work)
+    assert runs == [1] and not is_busy(ValueError("database is locked"))
+
+    def always_busy(session: Session) -> None:
+        runs.append(1)
+        raise _busy()
+
+    with pytest.raises(OperationalError, match="database is locked"):
+        run_transaction(db_url, always_busy, attempts=3, pause_s=0.001)
+    assert len(runs) == 4
