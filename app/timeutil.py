@@ -14,9 +14,13 @@ def parse_timestamp(text: str, tz: ZoneInfo) -> datetime:
     one (the repeated hour) takes its first occurrence. Returns an aware UTC datetime.
     """
     value = datetime.fromisoformat(text.strip())
-    if value.tzinfo is None:
-        value = localize(value, tz)
-    return value.astimezone(UTC)
+    try:
+        if value.tzinfo is None:
+            value = localize(value, tz)
+        return value.astimezone(UTC)
+    except OverflowError:
+        # Years 1 and 9999 can fall off the calendar once moved to UTC.
+        raise ValueError("timestamp out of range") from None
 
 
 def localize(naive: datetime, tz: ZoneInfo) -> datetime:

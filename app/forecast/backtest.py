@@ -171,7 +171,7 @@ def run_backtest(session: Session, unit: str, start: date, end: date, tz: ZoneIn
         if trained_on is None or (morning - trained_on).days >= retrain_days:
             if progress:
                 progress(i, len(mornings), f"training on what was known at {morning:%Y-%m-%d}")
-            payload = train_los(known)
+            payload = train_los(known, evaluate=False, compare=False)
             payload["arrivals"] = train_arrivals(known)
             record = ModelRecord(f"backtest-{morning:%Y%m%d}", morning, payload)
             trained_on = morning

@@ -2,8 +2,9 @@
 
 A file is all-or-nothing: every row is parsed and checked (against the file itself and
 against what is stored) before anything is written; any problem refuses the whole file.
-Importing the same file again changes nothing. Updates are written to the audit trail
-with the values before and after; inserted rows carry the id of their import batch.
+Importing the same file again changes nothing. Every inserted or updated unit, stay and
+booking has an audit event (values before and after) naming its import batch; census rows
+and observations, which are append-only, carry their batch id.
 """
 
 from __future__ import annotations
@@ -370,7 +371,10 @@ def _stays_apply(session: Session, plan: tuple[Rows, dict[str, Stay]], batch_id:
         old = stored.get(row["stay_id"])
         if old is None:
             source = "stays" if incoming["discharged_at"] is not None else None
-            new_rows.append({"stay_id": row["stay_id"], **incoming, "discharge_source": source})
+            new_rows.append({"stay_id": row["stay_id"], **incoming, "discharge_source": source,
+                             "batch_id": batch_id})
+            audits.append(_audit(actor, batch_id, "insert", "stay", row["stay_id"], None,
+                                 _jsonable(incoming)))
             result.inserted += 1
             continue
         if incoming["discharged_at"] is None and old.discharge_source == "census":
@@ -459,8 +463,13 @@ def _census_check(session: Session, sheet: Sheet) -> _CensusPlan:
 def _census_apply(session: Session, plan: _CensusPlan, batch_id: int, actor: str,
                   result: ImportResult) -> None:
     if plan.new_stays:
-        for part in chunked(list(plan.new_stays.values()), 2000):
+        stays = [{**stay, "batch_id": batch_id} for stay in plan.new_stays.values()]
+        for part in chunked(stays, 2000):
             session.execute(insert(Stay), part)
+        session.execute(insert(AuditEvent), [
+            _audit(actor, batch_id, "insert", "stay", stay["stay_id"], None,
+                   _jsonable({k: v for k, v in stay.items() if k not in ("stay_id", "batch_id")}))
+            for stay in stays])
     units: set[str] = set()
     for (unit, taken_at), rows in plan.snapshots.items():
         if not rows:
@@ -555,7 +564,9 @@ def _bookings_apply(session: Session, plan: tuple[Rows, dict[str, Booking]], bat
         incoming = {f: row[f] for f in BOOKING_FIELDS}
         old = stored.get(row["booking_id"])
         if old is None:
-            new_rows.append({"booking_id": row["booking_id"], **incoming})
+            new_rows.append({"booking_id": row["booking_id"], **incoming, "batch_id": batch_id})
+            audits.append(_audit(actor, batch_id, "insert", "booking", row["booking_id"], None,
+                                 _jsonable(incoming)))
             result.inserted += 1
             continue
         current = {f: getattr(old, f) for f in BOOKING_FIELDS}

@@ -36,10 +36,16 @@ FloatArray = npt.NDArray[np.float64]
 HOUR = 1.0 / 24.0
 
 
-def round_up_to_hours(days: npt.ArrayLike) -> FloatArray:
-    """Durations in days rounded up to whole hours, at least one hour."""
+def round_up_to_hours(days: npt.ArrayLike, hours: int = 1) -> FloatArray:
+    """Durations in days rounded up to a grid of ``hours`` hours, at least one grid step."""
     x = np.asarray(days, dtype=float)
-    return np.maximum(np.ceil(np.round(x * 24.0, 6)), 1.0) / 24.0
+    per_day = 24.0 / hours
+    return np.maximum(np.ceil(np.round(x * per_day, 6)), 1.0) / per_day
+
+
+# The stored Kaplan-Meier curves are for display: on a six-hour grid they stay small in the
+# model JSON (a few hundred steps per group instead of thousands).
+KM_GRID_HOURS = 6
 
 
 @dataclass(frozen=True, eq=False)
@@ -59,7 +65,7 @@ class StayGroup:
     share : dict
         For each admission type, the share of that type's stays that fall in this group.
     km : KaplanMeier
-        Kaplan-Meier estimate of the stay from admission (hour-rounded durations).
+        Kaplan-Meier estimate of the stay from admission (durations rounded up to six hours).
     coxian : CoxianSelection
         Coxian fits for p = 1, 2, ... phases with their BIC; ``coxian.best`` is used.
     """
@@ -207,5 +213,6 @@ def fit_stay_groups(x: npt.ArrayLike, durations: npt.ArrayLike, observed: npt.Ar
             node=int(leaf), rule=rules.rule(int(leaf)), n_stays=float(mask.sum()),
             n_ended=float(leaf_ended.sum()), longest_days=float(leaf_days.max()),
             share={k: float(np.sum(mask & (kinds == k)) / v) for k, v in type_totals.items()},
-            km=kaplan_meier(leaf_days, leaf_ended), coxian=selection))
+            km=kaplan_meier(round_up_to_hours(leaf_days, KM_GRID_HOURS), leaf_ended),
+            coxian=selection))
     return StayGroups(tree=rules, groups=tuple(groups))

@@ -890,31 +890,34 @@ class PiecewiseHazardTree:
             tree, _ = grown.pruned(keep_split)
             leaf_of_row = tree.apply(matrix)
             leaves, leaf_index = np.unique(leaf_of_row, return_inverse=True)
-            for _ in range(100):
-                exposure = np.bincount(row, weights=share * w[weekday] * f[stay_bin],
-                                       minlength=n)
-                total_rate = dw.sum() / max(float(np.sum(s * exposure)), 1e-300)
-                num = np.bincount(leaf_index, weights=dw, minlength=leaves.size)
-                den = np.bincount(leaf_index, weights=s * exposure, minlength=leaves.size)
-                leaf_rate = (num + self.rate_prior * total_rate) / (den + self.rate_prior)
-                piece_rate = (leaf_rate[leaf_index] * s)[row] * share
+            # The likelihood equations only need the clock exposure summed by (leaf, weekday,
+            # day-of-stay bin): iterate on that small table.
+            cell = np.zeros((leaves.size, 7, n_bins))
+            np.add.at(cell, (leaf_index[row], weekday, stay_bin), share * s[row])
+            num = np.bincount(leaf_index, weights=dw, minlength=leaves.size)
+            for _ in range(1000):
+                by_leaf = np.einsum("lwb,w,b->l", cell, w, f)
+                total_rate = dw.sum() / max(float(by_leaf.sum()), 1e-300)
+                leaf_rate = (num + self.rate_prior * total_rate) / (by_leaf + self.rate_prior)
                 new_w, new_f = w, f
                 if self.fit_clock:
-                    den_w = np.bincount(weekday, weights=piece_rate * f[stay_bin], minlength=7)
+                    den_w = np.einsum("lwb,l,b->w", cell, leaf_rate, f)
                     scale = events_weekday.sum() / max(den_w.sum(), 1e-300)
                     new_w = (events_weekday + prior) / (den_w + prior / scale)
                     new_w = np.maximum(new_w / new_w.mean(), 1e-3)
                 if self.fit_stay_day:
-                    den_f = np.bincount(stay_bin, weights=piece_rate * new_w[weekday],
-                                        minlength=n_bins)
+                    den_f = np.einsum("lwb,l,w->b", cell, leaf_rate, new_w)
                     scale = events_bin.sum() / max(den_f.sum(), 1e-300)
                     new_f = (events_bin + prior) / (den_f + prior / scale)
                     # Exposure-weighted mean 1: leaf rates stay "per typical day".
                     new_f = np.maximum(new_f / (np.sum(new_f * raw_bin) / raw_bin.sum()), 1e-3)
                 change = max(float(np.max(np.abs(new_w - w))), float(np.max(np.abs(new_f - f))))
                 w, f = new_w, new_f
-                if change < 1e-6:
+                if change < 1e-9:
                     break
+            by_leaf = np.einsum("lwb,w,b->l", cell, w, f)
+            total_rate = dw.sum() / max(float(by_leaf.sum()), 1e-300)
+            leaf_rate = (num + self.rate_prior * total_rate) / (by_leaf + self.rate_prior)
         assert tree is not None
         profile = DischargeProfile(hourly, w, edges, f)
         exposure = np.bincount(row, weights=share * w[weekday] * f[stay_bin], minlength=n)

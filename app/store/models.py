@@ -116,6 +116,7 @@ class Stay(Base):
     specialty: Mapped[str | None] = mapped_column(String(100))
     source: Mapped[str | None] = mapped_column(String(100))
     booking_id: Mapped[str | None] = mapped_column(String(64))
+    batch_id: Mapped[int | None] = mapped_column(ForeignKey("import_batch.id"))
 
 
 class CensusSnapshot(Base):
@@ -183,6 +184,7 @@ class Booking(Base):
     source: Mapped[str | None] = mapped_column(String(100))
     procedure: Mapped[str | None] = mapped_column(String(100))
     cancelled_at: Mapped[datetime | None]
+    batch_id: Mapped[int | None] = mapped_column(ForeignKey("import_batch.id"))
 
 
 class AuditEvent(Base):

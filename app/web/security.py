@@ -45,6 +45,7 @@ import logging
 from collections.abc import Callable
 from dataclasses import dataclass
 from datetime import UTC, datetime, timedelta
+from functools import cache
 from html import escape
 from typing import Annotated, Any
 from urllib.parse import parse_qs, quote
@@ -166,8 +167,13 @@ def current_actor(request: Request, session: Session) -> Actor | None:
     return actor
 
 
+@cache
 def require(permission: str) -> Callable[..., Actor]:
-    """A FastAPI dependency yielding the Actor when their role holds ``permission``."""
+    """A FastAPI dependency yielding the Actor when their role holds ``permission``.
+
+    The same object is returned for the same permission, so tests can replace it with
+    ``app.dependency_overrides[require("read")] = ...`` (see tests/security/fixtures.py).
+    """
     if permission not in PERMISSIONS:
         raise ValueError(f"permission must be one of {', '.join(PERMISSIONS)}; got {permission!r}")
 

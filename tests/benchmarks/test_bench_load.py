@@ -27,7 +27,7 @@ from datetime import UTC, datetime
 from pathlib import Path
 from urllib.parse import parse_qs, urlsplit
 
-import httpx
+import httpx2 as httpx
 import pytest
 from sqlalchemy import func, select
 
@@ -141,15 +141,24 @@ def run_client(n: int, base: str, start: threading.Barrier, stop_at: list[float]
     rng = random.Random(1000 + n)
     kinds, weights = list(MIX), list(MIX.values())
     with httpx.Client(base_url=base, timeout=60.0, follow_redirects=False) as client:
-        csrf = sign_in(client, username)
-        forecast = client.get(f"/api/units/{UNIT}/forecast").json()
-        stays = [s["stay_id"] for s in forecast["stays"]]
-        assert stays, "no patients in the unit now"
+        try:
+            csrf = sign_in(client, username)
+            forecast = client.get(f"/api/units/{UNIT}/forecast").json()
+            stays = [s["stay_id"] for s in forecast["stays"]]
+            assert stays, "no patients in the unit now"
+        except Exception as exc:  # reported, and the run is called off for everyone
+            with tally.lock:
+                tally.errors.append(f"{username} setup: {type(exc).__name__}: {exc}")
+            start.abort()
+            return
         with tally.lock:
             tally.stay_ids.update(stays)
         last_entry: dict[str, float] = {}
         k = 0
-        start.wait()
+        try:
+            start.wait()
+        except threading.BrokenBarrierError:
+            return  # another client failed to start: the test reports it
         while time.monotonic() < stop_at[0]:
             kind = rng.choices(kinds, weights)[0]
             began = time.perf_counter()
@@ -225,7 +234,10 @@ def test_load_twenty_clients_sixty_seconds(server: Server) -> None:
                for n in range(CLIENTS)]
     for t in threads:
         t.start()
-    start.wait(timeout=300)  # every client has signed in
+    try:
+        start.wait(timeout=300)  # every client has signed in
+    except threading.BrokenBarrierError:
+        pytest.fail(f"the clients could not all sign in: {tally.errors[:5]}")
     began = time.monotonic()
     stop_at[0] = began + DURATION_S
     for t in threads:

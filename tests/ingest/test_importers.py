@@ -95,7 +95,8 @@ def test_stay_update_is_audited_with_before_and_after(unit_db: str) -> None:
     assert result.updated == 1
     with db.session_scope(unit_db) as session:
         event = session.scalars(select(AuditEvent).where(
-            AuditEvent.entity == "stay", AuditEvent.entity_id == "S-2")).one()
+            AuditEvent.entity == "stay", AuditEvent.entity_id == "S-2",
+            AuditEvent.action == "update")).one()
         assert event.before == {"discharged_at": None, "outcome": None}
         assert event.after == {"discharged_at": "2026-03-06T11:00:00+00:00", "outcome": "home"}
         assert event.batch_id == result.batch_id and event.actor == "tester"

@@ -5,6 +5,12 @@
     make_user(db_url, "nurse.a", "nurse_in_charge", "a long password")
     client = signed_in_client(create_app(db_url), "nurse.a", "a long password")
     client.post("/some/form", data={"csrf_token": csrf(client), ...})
+
+For a database that must stay read-only (the shared ``demo_db``), skip signing in:
+
+    app = create_app(demo_db)
+    acting_as(app, "viewer")           # every require(...) answers as a viewer would
+    TestClient(app).get("/units/KV-CRIT")
 """
 
 from __future__ import annotations
@@ -16,7 +22,15 @@ from fastapi.testclient import TestClient
 
 from app.store import db
 from app.store import users as accounts
-from app.web.security import SESSION_COOKIE, _token
+from app.web.security import (
+    PERMISSIONS,
+    ROLE_PERMISSIONS,
+    SESSION_COOKIE,
+    Actor,
+    PermissionDenied,
+    _token,
+    require,
+)
 
 # Tests hash with a cheaper scrypt cost than the service (2**17) so sign-ins stay fast;
 # the cost is stored in the hash, so verification follows it.
@@ -65,3 +79,25 @@ def csrf(client: TestClient) -> str:
     cookie = client.cookies.get(SESSION_COOKIE)
     assert cookie, "the client is not signed in"
     return _token(app.state.csrf_key, "session", cookie)
+
+
+def acting_as(app: FastAPI, role: str, username: str = "test.user") -> Actor:
+    """Answer every ``require(permission)`` of ``app`` as a signed-in ``role`` would.
+
+    Permissions of the role yield the Actor; the others raise the same 403 as the real
+    check. No account or session is written, so it suits read-only databases. Forms still
+    need a CSRF token only when a session cookie is sent, which this client does not do.
+    """
+    actor = Actor(username, role, "session")
+
+    def answer_for(permission: str) -> object:
+        def answer() -> Actor:
+            if permission not in ROLE_PERMISSIONS[role]:
+                raise PermissionDenied(actor, permission)
+            return actor
+
+        return answer
+
+    for permission in PERMISSIONS:
+        app.dependency_overrides[require(permission)] = answer_for(permission)
+    return actor

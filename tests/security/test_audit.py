@@ -11,7 +11,6 @@ import io
 import json
 from typing import Any
 
-import pytest
 from sqlalchemy import select
 
 from app.ingest import import_file
@@ -55,30 +54,40 @@ def test_each_kind_of_import_write_is_audited(db_url: str) -> None:
     e = one(db_url, entity="unit", action="update")
     assert (e.before, e.after) == ({"census_time": "08:00"}, {"census_time": "07:00"})
 
-    run(db_url, "stays", csv_bytes(STAY_HEADER,
-        "S-A1,U-AUD,2026-03-01T10:00,,emergency,,60,f,cardiology,ward"), "stays.csv")
+    b3 = run(db_url, "stays", csv_bytes(STAY_HEADER,
+             "S-A1,U-AUD,2026-03-01T10:00,,emergency,,60,f,cardiology,ward"), "stays.csv")
     b4 = run(db_url, "stays", csv_bytes(STAY_HEADER,
              "S-A1,U-AUD,2026-03-01T10:00,2026-03-03T09:00,emergency,home,60,f,cardiology,ward"),
              "stays-2.csv")
-    e = one(db_url, entity="stay", entity_id="S-A1")
+    e = one(db_url, entity="stay", entity_id="S-A1", action="insert")
+    assert (e.before, e.batch_id) == (None, b3)
+    assert e.after is not None and e.after["admitted_at"] == "2026-03-01T10:00:00+00:00"
+    assert (e.after["discharged_at"], e.after["specialty"]) == (None, "cardiology")
+    e = one(db_url, entity="stay", entity_id="S-A1", action="update")
     assert e.batch_id == b4 and e.actor == ACTOR
     assert e.before == {"discharged_at": None, "outcome": None}
     assert e.after == {"discharged_at": "2026-03-03T09:00:00+00:00", "outcome": "home"}
 
     # A discharge inferred from census snapshots is an update of the stay, audited too.
-    run(db_url, "census", csv_bytes(CENSUS_HEADER,
+    b5 = run(db_url, "census", csv_bytes(CENSUS_HEADER,
         "2026-03-05T07:00,U-AUD,B1,S-C1,2026-03-04T12:00,emergency,50,general",
         "2026-03-06T07:00,U-AUD,B2,S-C2,2026-03-05T12:00,emergency,51,general"), "census.csv")
-    e = one(db_url, entity="stay", entity_id="S-C1")
+    e = one(db_url, entity="stay", entity_id="S-C1", action="insert")  # a stay the census made
+    assert e.before is None and e.batch_id == b5 and e.after is not None
+    assert e.after["admitted_at"] == "2026-03-04T12:00:00+00:00"
+    e = one(db_url, entity="stay", entity_id="S-C1", action="update")
     assert e.before == {"discharged_at": None, "discharge_source": None}
     assert e.after == {"discharged_at": "2026-03-06T07:00:00+00:00", "discharge_source": "census"}
 
-    run(db_url, "bookings", csv_bytes(BOOKING_HEADER,
-        "K-1,U-AUD,2026-03-01T09:00,2026-03-10,cardiac-surgery,cabg,"), "bookings.csv")
+    b6 = run(db_url, "bookings", csv_bytes(BOOKING_HEADER,
+             "K-1,U-AUD,2026-03-01T09:00,2026-03-10,cardiac-surgery,cabg,"), "bookings.csv")
+    e = one(db_url, entity="booking", entity_id="K-1", action="insert")
+    assert e.before is None and e.batch_id == b6 and e.after is not None
+    assert (e.after["planned_date"], e.after["cancelled_at"]) == ("2026-03-10", None)
     b7 = run(db_url, "bookings", csv_bytes(BOOKING_HEADER,
              "K-1,U-AUD,2026-03-01T09:00,2026-03-10,cardiac-surgery,cabg,2026-03-02T09:00"),
              "bookings-2.csv")
-    e = one(db_url, entity="booking", entity_id="K-1")
+    e = one(db_url, entity="booking", entity_id="K-1", action="update")
     assert (e.before, e.after, e.batch_id) == (
         {"cancelled_at": None}, {"cancelled_at": "2026-03-02T09:00:00+00:00"}, b7)
 
@@ -93,20 +102,19 @@ def test_each_kind_of_import_write_is_audited(db_url: str) -> None:
     assert summaries[-1].after == {"rows": 1, "inserted": 1, "updated": 0, "unchanged": 0}
 
 
-@pytest.mark.xfail(strict=True, raises=AssertionError,
-                   reason="stays and bookings inserted by an import carry no import batch id "
-                          "and no per-row audit event (importer, for the lead)")
 def test_inserted_stays_and_bookings_name_their_batch(db_url: str) -> None:
     run(db_url, "units", b"unit,beds\nU-AUD,8\n", "units.csv")
-    batch = run(db_url, "stays", csv_bytes(STAY_HEADER,
+    stays = run(db_url, "stays", csv_bytes(STAY_HEADER,
                 "S-N1,U-AUD,2026-03-01T10:00,,emergency,,60,f,cardiology,ward"), "stays.csv")
-    run(db_url, "bookings", csv_bytes(BOOKING_HEADER,
-        "K-N1,U-AUD,2026-03-01T09:00,2026-03-10,cardiac-surgery,cabg,"), "bookings.csv")
+    bookings = run(db_url, "bookings", csv_bytes(BOOKING_HEADER,
+                   "K-N1,U-AUD,2026-03-01T09:00,2026-03-10,cardiac-surgery,cabg,"),
+                   "bookings.csv")
     with db.session_scope(db_url) as session:
-        for model, key in ((Stay, "S-N1"), (Booking, "K-N1")):
-            assert getattr(session.get(model, key), "batch_id", None) is not None or \
-                session.scalar(select(AuditEvent).where(AuditEvent.entity_id == key)) \
-                is not None, (model.__name__, batch)
+        for model, key, batch in ((Stay, "S-N1", stays), (Booking, "K-N1", bookings)):
+            row = session.get(model, key)
+            assert row is not None and row.batch_id == batch, model.__name__
+            event = session.scalar(select(AuditEvent).where(AuditEvent.entity_id == key))
+            assert event is not None and (event.action, event.batch_id) == ("insert", batch)
 
 
 def test_each_kind_of_form_write_is_audited(secured: SecuredApp) -> None:

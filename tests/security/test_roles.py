@@ -161,3 +161,15 @@ def test_last_bed_manager_cannot_be_demoted(secured: SecuredApp) -> None:
                           data={"role": "viewer", "csrf_token": csrf(manager)})
     assert answer.status_code == 400 and "last active bed manager" in answer.text
     assert manager.get("/people").status_code == 200
+
+
+def test_acting_as_follows_the_role_table(secured: SecuredApp) -> None:
+    from tests.security.fixtures import acting_as
+
+    add_probes(secured.app)
+    acting_as(secured.app, "scheduler")
+    client = TestClient(secured.app)
+    for permission in PERMISSIONS:
+        want = 200 if permission in EXPECTED_TABLE["scheduler"] else 403
+        assert client.get(f"/api/probe/{permission}").status_code == want, permission
+    assert client.get("/api/whoami").json()["username"] == "test.user"
