@@ -34,12 +34,20 @@ def _local(series: pd.Series, state: UnitState) -> pd.Series:
 
 
 def _window(state: UnitState, days: int) -> tuple[date, date]:
-    """Whole local days before the cut-off day, at most ``days`` of them, from the first stay."""
+    """Whole local days before the cut-off day, at most ``days`` of them, where the history
+    of admissions is complete.
+
+    An extract of stays usually holds those discharged since some date, plus the stays then
+    in progress: admissions before the first recorded discharge are only the long stays
+    (left truncation), and counting them would drag the rate down. So the window starts the
+    day after the first discharge (and after the first admission).
+    """
     last = state.as_of.tz_convert(state.tz).date() - timedelta(days=1)
-    first_stay = _local(state.stays["admitted_at"], state).min()
     first = last - timedelta(days=days - 1)
-    if pd.notna(first_stay):
-        first = max(first, first_stay.date() + timedelta(days=1))
+    for column in ("admitted_at", "discharged_at"):
+        earliest = _local(state.stays[column].dropna(), state).min()
+        if pd.notna(earliest):
+            first = max(first, earliest.date() + timedelta(days=1))
     return first, last
 
 

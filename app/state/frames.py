@@ -143,14 +143,17 @@ def latest_observations(observations: pd.DataFrame, at: pd.Timestamp,
 
 
 def _widen(stays: pd.DataFrame, latest: pd.DataFrame, at: pd.Timestamp) -> pd.DataFrame:
-    out = stays
-    for name, group in latest.groupby("name", sort=True):
-        g = group.set_index("stay_id")
-        key = out["stay_id"]
-        out = out.assign(**{
-            str(name): key.map(g["value"]).astype(float),
-            f"{name}_change": key.map(g["value"] - g["previous"]).astype(float),
-            f"{name}_hours": key.map((at - g["observed_at"]).dt.total_seconds() / 3600.0)
-            .astype(float),
-        })
-    return out
+    """One column triple per observation name, joined onto the stays in one merge."""
+    if latest.empty:
+        return stays
+    values = latest.assign(
+        change=latest["value"] - latest["previous"],
+        hours=(at - latest["observed_at"]).dt.total_seconds() / 3600.0,
+    ).pivot(index="stay_id", columns="name", values=["value", "change", "hours"])
+    names = sorted(latest["name"].unique())
+    wide = pd.DataFrame(index=values.index)
+    for name in names:
+        wide[str(name)] = values[("value", name)].astype(float)
+        wide[f"{name}_change"] = values[("change", name)].astype(float)
+        wide[f"{name}_hours"] = values[("hours", name)].astype(float)
+    return stays.merge(wide, how="left", left_on="stay_id", right_index=True)

@@ -129,10 +129,16 @@ class BookedAdmissions:
     def p_present(self, census_at: FloatArray) -> FloatArray:
         """(bookings, instants) probability each booking's patient is in at each instant."""
         out = np.zeros((len(self.p_go), census_at.size))
-        for j, (g, a, stay) in enumerate(zip(self.p_go, self.admit_at, self.stays, strict=True)):
-            after = census_at >= a
-            if after.any():
-                out[j, after] = g * np.asarray(stay.sf(census_at[after] - a), dtype=float)
+        # Bookings of one patient group share a distribution: one sf call per group.
+        by_stay: dict[int, list[int]] = {}
+        for j, stay in enumerate(self.stays):
+            by_stay.setdefault(id(stay), []).append(j)
+        for rows in by_stay.values():
+            stay = self.stays[rows[0]]
+            lags = census_at[None, :] - np.asarray(self.admit_at, dtype=float)[rows][:, None]
+            after = lags >= 0
+            survival = _sf_once(stay, np.where(after, lags, 0.0))
+            out[rows] = np.where(after, survival, 0.0) * np.asarray(self.p_go)[rows][:, None]
         return out
 
 
@@ -147,6 +153,14 @@ class OccupancyDay:
     components: dict[str, float]
 
 
+def _sf_once(stay: Any, lags: FloatArray) -> FloatArray:
+    """``stay.sf`` at every lag, evaluated once per distinct lag (hourly slots and daily census
+    instants repeat the same lags many times)."""
+    flat = np.round(lags.ravel(), 9)
+    unique, inverse = np.unique(flat, return_inverse=True)
+    return np.asarray(stay.sf(unique), dtype=float)[inverse].reshape(lags.shape)
+
+
 def stream_presence(stream: ArrivalStream, census_at: FloatArray) -> FloatArray:
     """(days, instants) expected arrivals of each arrival day still present at each instant."""
     at = np.asarray(stream.slot_at, dtype=float)
@@ -154,11 +168,14 @@ def stream_presence(stream: ArrivalStream, census_at: FloatArray) -> FloatArray:
     day = np.asarray(stream.slot_day, dtype=int)
     n_days = int(day.max()) + 1 if day.size else 0
     out = np.zeros((n_days, census_at.size))
-    for k, h in enumerate(census_at):
-        before = at < h
-        if before.any():
-            present = mean[before] * np.asarray(stream.stay.sf(h - at[before]), dtype=float)
-            out[:, k] = np.bincount(day[before], weights=present, minlength=n_days)
+    if not at.size:
+        return out
+    lags = census_at[None, :] - at[:, None]
+    before = lags > 0
+    survival = np.where(before, _sf_once(stream.stay, np.where(before, lags, 0.0)), 0.0)
+    present = mean[:, None] * survival
+    for k in range(census_at.size):
+        out[:, k] = np.bincount(day, weights=present[:, k], minlength=n_days)
     return out
 
 

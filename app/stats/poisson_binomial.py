@@ -25,7 +25,7 @@ import math
 
 import numpy as np
 import numpy.typing as npt
-from scipy import stats
+from scipy import special, stats
 
 __all__ = [
     "convolve_pmfs",
@@ -158,6 +158,17 @@ def poisson_pmf(mean: float, kmax: int | None = None, *, tail: float = DEFAULT_T
         raise ValueError(f"mean: must be finite and >= 0, got {mean!r}")
     if mean == 0:
         return np.ones(1) if not kmax else np.r_[1.0, np.zeros(kmax)]
+    if kmax is None:
+        # Direct evaluation: building a frozen scipy distribution costs milliseconds, and a
+        # forecast needs dozens of these pmfs.
+        if not 0 < tail < 1:
+            raise ValueError(f"tail: must be in (0, 1), got {tail!r}")
+        k = np.arange(int(mean + 12 * math.sqrt(mean) + 40))
+        sf = stats.poisson.sf(k, mean)
+        kmax = int(np.argmax(sf < tail))
+        pmf = np.exp(k[: kmax + 1] * math.log(mean) - mean - special.gammaln(k[: kmax + 1] + 1))
+        pmf[-1] += sf[kmax]
+        return pmf
     return _truncated(stats.poisson(mean), kmax, tail)
 
 

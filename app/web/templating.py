@@ -29,7 +29,15 @@ def _pct(value: float | None, digits: int = 0) -> str:
     return f"{value * 100:.{digits}f}%"
 
 
+def _script_json(text: str) -> str:
+    """JSON text safe inside <script type="application/json">: no '</script>' can close it."""
+    from markupsafe import Markup
+
+    return Markup(text.replace("<", "\\u003c").replace(">", "\\u003e").replace("&", "\\u0026"))
+
+
 templates = Jinja2Templates(directory=str(PROJECT_ROOT / "templates"),
                             context_processors=[security.template_context])
 templates.env.filters["local"] = _local
 templates.env.filters["pct"] = _pct
+templates.env.filters["script_json"] = _script_json

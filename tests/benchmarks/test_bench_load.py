@@ -23,7 +23,7 @@ import time
 from collections import defaultdict
 from collections.abc import Iterator
 from dataclasses import dataclass, field
-from datetime import UTC, datetime
+from datetime import UTC, datetime, timedelta
 from pathlib import Path
 from urllib.parse import parse_qs, urlsplit
 
@@ -73,7 +73,10 @@ def server(db_url: str, tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> Iter
     with db.session_scope(db_url) as session:
         load_demo(session, DEMO_DIR, tz=UTC_ZONE, shift=True)
     with db.session_scope(db_url) as session:
-        train_model(session, UNIT, datetime.now(UTC), UTC_ZONE)
+        # Pages forecast from the current minute, and use only a model trained until
+        # then: train until a minute ago, or the first minute would find no model.
+        until = datetime.now(UTC).replace(second=0, microsecond=0) - timedelta(minutes=1)
+        train_model(session, UNIT, until, UTC_ZONE)
     for c in range(CLIENTS):
         make_user(db_url, f"load.nurse{c:02d}", "nurse_in_charge", PASSWORD)
     db.get_engine(db_url).dispose()
