@@ -27,10 +27,11 @@ install-test: $(VENV)/.installed-test
 demo: install
 	$(BIN)/morrow --db $(DB) db upgrade
 	$(BIN)/morrow --db $(DB) demo load
-	$(BIN)/morrow --db $(DB) demo train
+	MORROW_NOW=$$($(BIN)/morrow --db $(DB) demo now) $(BIN)/morrow --db $(DB) demo train
 	$(BIN)/morrow --db $(DB) demo users
 	@echo "Open http://$(HOST):$(PORT)/ and sign in with one of the accounts above (Ctrl-C stops the server)."
-	$(BIN)/morrow --db $(DB) serve --host $(HOST) --port $(PORT)
+	@echo "The page replays the demo's last census morning (MORROW_NOW); unset it for the real clock."
+	MORROW_NOW=$$($(BIN)/morrow --db $(DB) demo now) $(BIN)/morrow --db $(DB) serve --host $(HOST) --port $(PORT)
 
 test: install-test
 	$(BIN)/python -m pytest -q tests --ignore=tests/benchmarks

@@ -37,6 +37,13 @@ def run_migrations_offline() -> None:
 
 def run_migrations_online() -> None:
     with get_engine(_url()).connect() as connection:
+        sqlite = connection.dialect.name == "sqlite"
+        if sqlite:
+            # Batch mode rebuilds a SQLite table (copy, drop, rename); with foreign keys
+            # enforced, dropping a table that others reference fails. The pragma only takes
+            # effect outside a transaction, and the keys are checked again afterwards.
+            connection.exec_driver_sql("PRAGMA foreign_keys=OFF")
+            connection.commit()
         context.configure(
             connection=connection,
             target_metadata=target_metadata,
@@ -47,6 +54,12 @@ def run_migrations_online() -> None:
         with context.begin_transaction():
             context.run_migrations()
         connection.commit()
+        if sqlite:
+            broken = connection.exec_driver_sql("PRAGMA foreign_key_check").fetchall()
+            connection.exec_driver_sql("PRAGMA foreign_keys=ON")
+            connection.commit()
+            if broken:
+                raise RuntimeError(f"foreign keys broken after migrating: {broken[:5]}")
 
 
 if context.is_offline_mode():

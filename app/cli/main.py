@@ -203,6 +203,17 @@ def cmd_demo_train(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
+def cmd_demo_now(args: argparse.Namespace) -> int:
+    """The latest census instant of any unit: `make demo` replays the page from there."""
+    with db.session_scope(args.db) as session:
+        instants = [repo.latest_snapshot_at(session, u.code) for u in repo.list_units(session)]
+    known = [i for i in instants if i is not None]
+    if not known:
+        raise BadInput("no census snapshot is stored yet")
+    print(max(known).astimezone(get_settings().tz).isoformat())
+    return EXIT_OK
+
+
 def cmd_serve(args: argparse.Namespace) -> int:
     import uvicorn
 
@@ -243,6 +254,8 @@ def build_parser() -> argparse.ArgumentParser:
     users.register_demo(demosub)
     demosub.add_parser("train", help="train every unit on what is known now"
                        ).set_defaults(func=cmd_demo_train)
+    demosub.add_parser("now", help="print the latest census instant (the demo's morning)"
+                       ).set_defaults(func=cmd_demo_now)
 
     p = sub.add_parser("train", help="fit the unit's length-of-stay and arrivals models")
     p.add_argument("--unit", required=True)

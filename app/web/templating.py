@@ -41,3 +41,4 @@ templates = Jinja2Templates(directory=str(PROJECT_ROOT / "templates"),
 templates.env.filters["local"] = _local
 templates.env.filters["pct"] = _pct
 templates.env.filters["script_json"] = _script_json
+templates.env.globals["replay_now"] = lambda: get_settings().now
