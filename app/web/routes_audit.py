@@ -11,17 +11,15 @@ from typing import Annotated, Any
 
 from fastapi import APIRouter, Query, Request
 from fastapi.responses import HTMLResponse, StreamingResponse
-from fastapi.templating import Jinja2Templates
 
-from app.config import PROJECT_ROOT, get_settings
+from app.config import get_settings
 from app.store import db
 from app.store.audit import AuditFilter, AuditRow, count_events, iter_events, list_events
 from app.web.deps import SessionDep
-from app.web.security import AdminActor, csv_safe, template_context
+from app.web.security import AdminActor, csv_safe
+from app.web.templating import templates
 
 router = APIRouter()
-templates = Jinja2Templates(directory=str(PROJECT_ROOT / "templates"),
-                            context_processors=[template_context])
 
 PAGE_SIZE = 100
 EXPORT_COLUMNS = ("id", "at", "actor", "action", "entity", "entity_id", "origin", "batch_id",

@@ -8,10 +8,9 @@ from typing import Annotated
 
 from fastapi import APIRouter, Form, Path, Request
 from fastapi.responses import HTMLResponse, JSONResponse, RedirectResponse, Response
-from fastapi.templating import Jinja2Templates
 from pydantic import BaseModel, Field
 
-from app.config import PROJECT_ROOT, get_settings
+from app.config import get_settings
 from app.store import audit
 from app.store import users as accounts
 from app.store.models import UserAccount
@@ -27,15 +26,12 @@ from app.web.security import (
     _safe_next,
     form_origin,
     session_cookie_args,
-    template_context,
 )
+from app.web.templating import templates
 
 router = APIRouter()
 # SQLite integers are 64-bit: a larger id is refused here rather than failing in the driver.
 TokenId = Annotated[int, Path(ge=1, le=2**63 - 1)]
-templates = Jinja2Templates(directory=str(PROJECT_ROOT / "templates"),
-                            context_processors=[template_context])
-
 
 # -- signing in and out ---------------------------------------------------------------------
 
