@@ -10,10 +10,9 @@ from fastapi.responses import FileResponse, HTMLResponse
 from fastapi.staticfiles import StaticFiles
 
 from app import __version__
-from app.config import PROJECT_ROOT, current_time, get_settings
-from app.state import load_state
+from app.config import PROJECT_ROOT, get_settings
 from app.store import db, repo
-from app.web import api, model_page, pages, routes_audit, routes_auth, security
+from app.web import api, forecasts, model_page, pages, routes_audit, routes_auth, security
 from app.web.deps import SessionDep
 from app.web.security import ReadActor
 from app.web.templating import templates
@@ -48,14 +47,12 @@ def create_app(database_url: str | None = None) -> FastAPI:
 
     @app.get("/", response_class=HTMLResponse)
     def home(request: Request, session: SessionDep, actor: ReadActor) -> HTMLResponse:
-        """Units with their staffed beds and occupancy now."""
-        tz = get_settings().tz
-        now = current_time()
+        """Units with their staffed beds and occupancy now (from the page's forecast cache)."""
         rows = []
         for unit in repo.list_units(session):
-            state = load_state(session, unit.code, now, tz, with_history=False)
+            state = forecasts.current(session, unit.code).state
             rows.append({"code": unit.code, "census_time": unit.census_time,
-                         "beds": state.beds_on(now.astimezone(tz).date()),
+                         "beds": state.beds_on(state.as_of.tz_convert(state.tz).date()),
                          "occupied": state.occupancy_at(state.as_of)})
         return templates.TemplateResponse(request, "home.html", {"units": rows})
 

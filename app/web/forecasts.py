@@ -62,12 +62,17 @@ def current(session: Session, unit: str, *, as_of: datetime | None = None,
     moment = (as_of or current_time()).astimezone(UTC)
     if as_of is None:
         moment = moment.replace(second=0, microsecond=0)
+    marker = repo.data_marker(session)
     try:
         record = model_for(session, unit, moment)
     except NoModel as exc:
-        state = load_state(session, unit, moment, tz, with_history=False)
-        return Shown(None, state, str(exc))
-    marker = repo.data_marker(session)
+        key = (str(session.get_bind().url), unit, None, moment, days, marker)
+        with _lock:
+            if key in _cache:
+                return _cache[key]
+        shown = Shown(None, load_state(session, unit, moment, tz, with_history=False), str(exc))
+        _remember(key, shown)
+        return shown
     key = (str(session.get_bind().url), unit, record.id, moment, days, marker)
     with _lock:
         if key in _cache:
@@ -82,13 +87,17 @@ def current(session: Session, unit: str, *, as_of: datetime | None = None,
         state = load_state(session, unit, moment, tz, with_history=False)
         forecast, inputs = forecast_with_inputs(state, record, days=days)
         shown = Shown(forecast, state, None, expected_admissions(inputs))
-        with _lock:
-            _cache[key] = shown
-            while len(_cache) > CACHE_SIZE:
-                _cache.popitem(last=False)
+        _remember(key, shown)
     if as_of is None:
         _store_now_and_then(session, shown.forecast, (key[0], unit, record.id, marker), moment)
     return shown
+
+
+def _remember(key: tuple[Any, ...], shown: Shown) -> None:
+    with _lock:
+        _cache[key] = shown
+        while len(_cache) > CACHE_SIZE:
+            _cache.popitem(last=False)
 
 
 def _store_now_and_then(session: Session, forecast: dict[str, Any] | None,
