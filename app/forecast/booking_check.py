@@ -25,7 +25,7 @@ import pandas as pd
 from app.forecast.los import LosModel
 from app.forecast.service import (
     ModelRecord,
-    _admit_hour,
+    admit_hour,
     forecast_inputs,
 )
 from app.state import UnitState
@@ -67,7 +67,7 @@ def booking_check(state: UnitState, record: ModelRecord, candidate: Candidate,
     inputs = forecast_inputs(state, record, horizon)
     base = occupancy_days(inputs.predictions.p_present, inputs.booked, inputs.streams,
                           inputs.census_at, inputs.beds)
-    hour = _admit_hour(record.payload["arrivals"]["elective"]["hour_profile"])
+    hour = admit_hour(record.payload["arrivals"]["elective"]["hour_profile"])
 
     def evaluate(day: date) -> dict[str, Any]:
         admit = localize(datetime.combine(day, time(0)) + timedelta(hours=hour), state.tz)

@@ -93,7 +93,7 @@ def _newcomer_stay(los: LosModel, admission_type: str) -> StayMixture:
     return StayMixture(tuple(w for w, _ in parts), tuple(d for _, d in parts))
 
 
-def _admit_hour(profile: list[float]) -> float:
+def admit_hour(profile: list[float]) -> float:
     """The median clock hour of elective admissions (slot midpoint)."""
     cumulative = np.cumsum(profile)
     return float(np.searchsorted(cumulative, 0.5)) + 0.5
@@ -109,7 +109,7 @@ def _booked(state: UnitState, los: LosModel, elective: dict[str, Any], last_day:
     frame = bookings.assign(admission_type="elective")
     groups = los.groups.group_of(los.design.covariate_matrix(frame))
     p_go_by_lead = elective["p_go_by_lead"]
-    hour = _admit_hour(elective["hour_profile"])
+    hour = admit_hour(elective["hour_profile"])
     p_go, admit_at, stays = [], [], []
     for planned, group in zip(bookings["planned_date"], groups, strict=True):
         lead = min((planned - today).days, MAX_LEAD)
