@@ -36,7 +36,7 @@ from scipy import stats
 from sqlalchemy.orm import Session
 
 from app.forecast.arrivals import train_arrivals
-from app.forecast.los import LosModel, state_as_of, train_los
+from app.forecast.los import LosModel, train_los
 from app.forecast.service import ModelRecord, forecast_from_state, forecast_inputs
 from app.state import UnitState, load_state
 from app.stats.kaplan_meier import kaplan_meier
@@ -167,7 +167,7 @@ def run_backtest(session: Session, unit: str, start: date, end: date, tz: ZoneIn
     record: ModelRecord | None = None
     trained_on: datetime | None = None
     for i, morning in enumerate(mornings):
-        known = state_as_of(full, morning)
+        known = full.known_at(morning)
         if trained_on is None or (morning - trained_on).days >= retrain_days:
             if progress:
                 progress(i, len(mornings), f"training on what was known at {morning:%Y-%m-%d}")

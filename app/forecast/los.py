@@ -816,30 +816,6 @@ def predict_stays(model: LosModel | Mapping[str, Any], state: UnitState,
 # ---------------------------------------------------------------------------------------------
 
 
-def state_as_of(state: UnitState, at: datetime | pd.Timestamp) -> UnitState:
-    """What the state knew at an earlier instant (the "as of" rule applied to its frames)."""
-    moment = pd.Timestamp(at)
-    moment = moment.tz_localize("UTC") if moment.tzinfo is None else moment.tz_convert("UTC")
-    if moment > state.as_of:
-        raise ValueError(f"at: {moment} is after the state's as_of {state.as_of}")
-    stays = state.stays.loc[state.stays["admitted_at"] <= moment].copy()
-    later = stays["discharged_at"].notna() & (stays["discharged_at"] > moment)
-    stays.loc[later, "discharged_at"] = pd.NaT
-    stays.loc[later, "outcome"] = None
-    obs = state.observations
-    obs = obs.loc[(obs["observed_at"] <= moment) & (obs["recorded_at"] <= moment)
-                  & obs["stay_id"].isin(stays["stay_id"])]
-    bookings = state.bookings.loc[state.bookings["booked_at"] <= moment].copy()
-    cancelled_later = bookings["cancelled_at"].notna() & (bookings["cancelled_at"] > moment)
-    bookings.loc[cancelled_later, "cancelled_at"] = pd.NaT
-    snapshots = state.snapshots.loc[state.snapshots["taken_at"] <= moment]
-    return UnitState(unit=state.unit, as_of=moment, tz=state.tz, census_time=state.census_time,
-                     bed_plan=state.bed_plan, stays=stays.reset_index(drop=True),
-                     observations=obs.reset_index(drop=True),
-                     bookings=bookings.reset_index(drop=True),
-                     snapshots=snapshots.reset_index(drop=True))
-
-
 @dataclass(frozen=True, eq=False)
 class _StayTable:
     """Whole stays as known at a cut-off: length so far and whether ended."""

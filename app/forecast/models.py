@@ -35,11 +35,21 @@ def newest_model(session: Session, unit: str, not_after: datetime
     if not_after.tzinfo is None:
         raise ValueError("not_after: must be an aware datetime")
     row = session.execute(
-        select(TrainedModel.id, TrainedModel.trained_until, TrainedModel.payload)
+        select(TrainedModel.id, TrainedModel.trained_until)
         .where(TrainedModel.unit == unit, TrainedModel.kind == MODEL_KIND,
                TrainedModel.trained_until <= as_utc(not_after))
         .order_by(TrainedModel.trained_until.desc(), TrainedModel.created_at.desc())
         .limit(1)).first()
     if row is None:
         return None
-    return str(row[0]), as_utc(row[1]), json.loads(row[2])
+    model_id = str(row[0])
+    # A stored model never changes, so its parsed payload is kept: every page view asks.
+    payload = _payloads.get(model_id)
+    if payload is None:
+        payload = json.loads(session.scalar(
+            select(TrainedModel.payload).where(TrainedModel.id == model_id)))
+        _payloads[model_id] = payload
+    return model_id, as_utc(row[1]), payload
+
+
+_payloads: dict[str, dict[str, Any]] = {}

@@ -12,8 +12,8 @@ Every timestamp column is ``datetime64[ns, UTC]``. The rules (DATA_CONTRACT.md, 
 
 from __future__ import annotations
 
-from dataclasses import dataclass
-from datetime import date, time
+from dataclasses import dataclass, replace
+from datetime import date, datetime, time
 from zoneinfo import ZoneInfo
 
 import numpy as np
@@ -62,6 +62,29 @@ class UnitState:
     observations: pd.DataFrame
     bookings: pd.DataFrame
     snapshots: pd.DataFrame
+
+    def known_at(self, at: datetime | pd.Timestamp) -> UnitState:
+        """What this state knew at an earlier instant: the "as of" rule applied to its frames
+        (the same rule ``load_state`` applies in SQL; backtests replay many mornings this way)."""
+        moment = pd.Timestamp(at)
+        moment = moment.tz_localize("UTC") if moment.tzinfo is None else moment.tz_convert("UTC")
+        if moment > self.as_of:
+            raise ValueError(f"at: {moment} is after the state's as_of {self.as_of}")
+        stays = self.stays.loc[self.stays["admitted_at"] <= moment].copy()
+        later = stays["discharged_at"].notna() & (stays["discharged_at"] > moment)
+        stays.loc[later, "discharged_at"] = pd.NaT
+        stays.loc[later, "outcome"] = None
+        obs = self.observations
+        obs = obs.loc[(obs["observed_at"] <= moment) & (obs["recorded_at"] <= moment)
+                      & obs["stay_id"].isin(stays["stay_id"])]
+        bookings = self.bookings.loc[self.bookings["booked_at"] <= moment].copy()
+        cancelled_later = bookings["cancelled_at"].notna() & (bookings["cancelled_at"] > moment)
+        bookings.loc[cancelled_later, "cancelled_at"] = pd.NaT
+        snapshots = self.snapshots.loc[self.snapshots["taken_at"] <= moment]
+        return replace(self, as_of=moment, stays=stays.reset_index(drop=True),
+                       observations=obs.reset_index(drop=True),
+                       bookings=bookings.reset_index(drop=True),
+                       snapshots=snapshots.reset_index(drop=True))
 
     def beds_on(self, day: date) -> int | None:
         """Staffed beds on a local day (from that day's census instant on)."""

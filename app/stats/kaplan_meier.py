@@ -102,6 +102,26 @@ class KaplanMeier:
         )
 
 
+def check_stays(durations: npt.ArrayLike, observed: npt.ArrayLike
+                ) -> tuple[npt.NDArray[np.float64], npt.NDArray[np.bool_]]:
+    """Stay lengths (finite, >= 0, 1-D, non-empty) and ended flags (0/1) as arrays.
+
+    Raises ValueError naming the argument and the first bad value.
+    """
+    x = np.asarray(durations, dtype=float)
+    if x.ndim != 1 or x.size == 0:
+        raise ValueError(f"durations: must be a non-empty 1-D array, got shape {x.shape}")
+    bad = np.flatnonzero(~np.isfinite(x) | (x < 0))
+    if bad.size:
+        raise ValueError(f"durations: must be finite and >= 0; position {bad[0]} is {x[bad[0]]!r}")
+    ended = np.asarray(observed)
+    if ended.shape != x.shape:
+        raise ValueError(f"observed: shape {ended.shape} does not match durations {x.shape}")
+    if not np.all(np.isin(ended, (0, 1))):
+        raise ValueError("observed: must be booleans or 0/1 (1 = the stay has ended)")
+    return x, ended.astype(bool)
+
+
 def kaplan_meier(durations: npt.ArrayLike, observed: npt.ArrayLike) -> KaplanMeier:
     """Kaplan-Meier estimate from stay durations.
 
@@ -116,17 +136,7 @@ def kaplan_meier(durations: npt.ArrayLike, observed: npt.ArrayLike) -> KaplanMei
     -------
     KaplanMeier
     """
-    x = np.asarray(durations, dtype=float)
-    if x.ndim != 1 or x.size == 0:
-        raise ValueError(f"durations: must be a non-empty 1-D array, got shape {x.shape}")
-    bad = np.flatnonzero(~np.isfinite(x) | (x < 0))
-    if bad.size:
-        raise ValueError(f"durations: must be finite and >= 0; position {bad[0]} is {x[bad[0]]!r}")
-    ended = np.asarray(observed)
-    if ended.shape != x.shape:
-        raise ValueError(f"observed: shape {ended.shape} does not match durations {x.shape}")
-    if not np.all(np.isin(ended, (0, 1))):
-        raise ValueError("observed: must be booleans or 0/1 (1 = the stay has ended)")
+    x, ended = check_stays(durations, observed)
     time, inverse = np.unique(x, return_inverse=True)
     leaving = np.bincount(inverse, minlength=time.size)
     events = np.bincount(inverse, weights=ended.astype(float), minlength=time.size)

@@ -69,6 +69,8 @@ import pandas as pd
 from scipy import linalg, optimize
 from threadpoolctl import ThreadpoolController
 
+from app.stats.kaplan_meier import check_stays
+
 __all__ = [
     "Coxian",
     "CoxianFit",
@@ -566,18 +568,8 @@ def distribution_from_dict(data: Mapping[str, Any]) -> PhaseType | Coxian:
 def _validate_stays(
     durations: npt.ArrayLike, observed: npt.ArrayLike, weights: npt.ArrayLike | None
 ) -> tuple[FloatArray, FloatArray, FloatArray]:
-    x = np.asarray(durations, dtype=float)
-    if x.ndim != 1 or x.size == 0:
-        raise ValueError(f"durations: must be a non-empty 1-D array, got shape {x.shape}")
-    bad = np.flatnonzero(~np.isfinite(x) | (x < 0))
-    if bad.size:
-        raise ValueError(f"durations: must be finite and >= 0; position {bad[0]} is {x[bad[0]]!r}")
-    d_raw = np.asarray(observed)
-    if d_raw.shape != x.shape:
-        raise ValueError(f"observed: shape {d_raw.shape} does not match durations {x.shape}")
-    if not np.all(np.isin(d_raw, (0, 1, False, True))):
-        raise ValueError("observed: must be booleans or 0/1 (1 = the stay has ended)")
-    d = d_raw.astype(float)
+    x, ended = check_stays(durations, observed)
+    d = ended.astype(float)
     if weights is None:
         w = np.ones_like(x)
     else:

@@ -27,7 +27,6 @@ from app.forecast.los import (
     observation_names,
     observations_at,
     predict_stays,
-    state_as_of,
     survival_metrics,
     train_los,
 )
@@ -126,7 +125,7 @@ def test_landmark_features_equal_the_current_stays_known_then(
     rng = np.random.default_rng(1)
     for at_ns in rng.choice(np.unique(landmarks.at_ns), 6, replace=False):
         moment = pd.Timestamp(int(at_ns), tz="UTC")
-        current = state_as_of(state, moment).current_stays().set_index("stay_id")
+        current = state.known_at(moment).current_stays().set_index("stay_id")
         mine = landmarks.subset(landmarks.at_ns == at_ns)
         ids = landmarks.stays["stay_id"].to_numpy()[mine.stay_index]
         # Every stay in the unit at the landmark has its row (stays in progress included).
@@ -144,7 +143,7 @@ def test_training_rows_as_of_an_earlier_instant_equal_those_of_its_state(
     cut = datetime(2026, 6, 10, 8, 0, tzinfo=UTC)
     with db.session_scope(demo_db) as session:
         loaded = load_state(session, "KV-CRIT", cut, UTC_ZONE)
-    derived = state_as_of(states["KV-CRIT"], cut)
+    derived = states["KV-CRIT"].known_at(cut)
     pd.testing.assert_frame_equal(derived.stays, loaded.stays)
     pd.testing.assert_frame_equal(derived.observations, loaded.observations)
     direct = build_landmarks(loaded)
