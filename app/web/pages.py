@@ -98,6 +98,8 @@ def unit_page(request: Request, unit: str, session: SessionDep, actor: ReadActor
         "problem": shown.problem, "forecast": shown.forecast, "entered": entered,
         "message": message, "patients": shown.view("patients", lambda: _patients(session, shown)),
         "score_choices": SCORE_CHOICES, "score_ranges": SCORE_RANGES,
+        "unit_score": next((p["score_name"] for p in shown.view(
+            "patients", lambda: _patients(session, shown)) if p["score_name"]), None),
         "latest_census": latest_census,
         "stale_hours": _stale_hours(latest_census, state.as_of.to_pydatetime()),
         "units": [u.code for u in repo.list_units(session)],
