@@ -24,10 +24,13 @@ from app.state import UnitState, load_state
 from app.stats.occupancy import (
     ArrivalStream,
     BookedAdmissions,
+    Newcomers,
+    PathDraws,
     StayMixture,
     day_to_json,
-    occupancy_days,
-    simulate_paths,
+    draw_paths,
+    newcomers,
+    with_current,
 )
 from app.store.models import StoredForecast
 from app.timeutil import census_instants_after, iso, localize
@@ -146,8 +149,33 @@ class ForecastInputs:
     streams: list[ArrivalStream]
 
 
-def forecast_inputs(state: UnitState, record: ModelRecord, days: int) -> ForecastInputs:
-    """Per-stay probabilities, known bookings and the arrival streams for the next ``days``."""
+@dataclass(frozen=True, eq=False)
+class Backdrop:
+    """The part of a forecast that the current patients' scores cannot change.
+
+    Census instants, beds, bookings, the arrival streams, the newcomers' exact occupancy and
+    the joint paths' random draws depend only on the model, ``as_of`` and which stays and
+    bookings there are. A page computes this once and, when a score comes in, redoes only
+    the current patients' probabilities (:func:`forecast_on`).
+    """
+
+    unit: str
+    as_of: pd.Timestamp
+    stay_ids: tuple[str, ...]
+    los: LosModel
+    instants: list[datetime]
+    census_at: np.ndarray
+    local_days: list[date]
+    beds: list[int | None]
+    booked: BookedAdmissions
+    streams: list[ArrivalStream]
+    newcomers: Newcomers
+    draws: PathDraws | None
+
+
+def forecast_backdrop(state: UnitState, record: ModelRecord, *, days: int = DEFAULT_DAYS,
+                      paths: int = WEEK_PATHS, seed: int = 0) -> Backdrop:
+    """Everything but the current patients' probabilities, for ``days`` census instants."""
     los = LosModel.from_payload(record.payload)
     arrivals = record.payload["arrivals"]
     instants = census_instants_after(state.as_of.to_pydatetime(), state.census_time, state.tz,
@@ -164,15 +192,32 @@ def forecast_inputs(state: UnitState, record: ModelRecord, days: int) -> Forecas
     unbooked = _hourly_stream("elective", state, today, unbooked_means,
                               arrivals["elective"]["hour_profile"], None,
                               _newcomer_stay(los, "elective"))
+    census_at = np.array([_days_after(h, state.as_of) for h in instants])
+    booked = _booked(state, los, arrivals["elective"], local_days[-1])
+    streams = [emergency, unbooked]
+    beds = [state.beds_on(d) for d in local_days]
+    stay_ids = tuple(str(s) for s in state.stays.loc[state.present_mask(state.as_of), "stay_id"])
+    draws = None
+    if paths > 0 and all(b is not None for b in beds):
+        draws = draw_paths(len(stay_ids), booked, streams, census_at, paths,
+                           np.random.default_rng(seed))
+    return Backdrop(unit=state.unit, as_of=state.as_of, stay_ids=stay_ids, los=los,
+                    instants=instants, census_at=census_at, local_days=local_days, beds=beds,
+                    booked=booked, streams=streams,
+                    newcomers=newcomers(booked, streams, census_at), draws=draws)
+
+
+def forecast_inputs(state: UnitState, record: ModelRecord, days: int) -> ForecastInputs:
+    """Per-stay probabilities, known bookings and the arrival streams for the next ``days``."""
+    return _inputs(forecast_backdrop(state, record, days=days, paths=0), state)
+
+
+def _inputs(backdrop: Backdrop, state: UnitState) -> ForecastInputs:
     return ForecastInputs(
-        instants=instants,
-        census_at=np.array([_days_after(h, state.as_of) for h in instants]),
-        local_days=local_days,
-        beds=[state.beds_on(d) for d in local_days],
-        predictions=predict_stays(los, state, instants),
-        booked=_booked(state, los, arrivals["elective"], local_days[-1]),
-        streams=[emergency, unbooked],
-    )
+        instants=backdrop.instants, census_at=backdrop.census_at,
+        local_days=backdrop.local_days, beds=backdrop.beds,
+        predictions=predict_stays(backdrop.los, state, backdrop.instants),
+        booked=backdrop.booked, streams=backdrop.streams)
 
 
 def expected_admissions(inputs: ForecastInputs) -> list[float]:
@@ -201,10 +246,21 @@ def forecast_with_inputs(state: UnitState, record: ModelRecord, *, days: int = D
                          paths: int = WEEK_PATHS, seed: int = 0
                          ) -> tuple[dict[str, Any], ForecastInputs]:
     """The forecast JSON and the inputs it was computed from (for the page's day table)."""
-    inputs = forecast_inputs(state, record, days)
+    backdrop = forecast_backdrop(state, record, days=days, paths=paths, seed=seed)
+    return forecast_on(backdrop, state, record)
+
+
+def forecast_on(backdrop: Backdrop, state: UnitState, record: ModelRecord
+                ) -> tuple[dict[str, Any], ForecastInputs]:
+    """The forecast from a backdrop and a state with the same as_of, stays and bookings
+    (observations may be newer than the backdrop's)."""
+    if state.unit != backdrop.unit or state.as_of != backdrop.as_of:
+        raise ValueError("state: another unit or as_of than the backdrop's")
+    inputs = _inputs(backdrop, state)
+    if tuple(inputs.predictions.stay_ids) != backdrop.stay_ids:
+        raise ValueError("state: other current stays than the backdrop's")
     p_present = inputs.predictions.p_present
-    results = occupancy_days(p_present, inputs.booked, inputs.streams, inputs.census_at,
-                             inputs.beds)
+    results = with_current(p_present, backdrop.newcomers, inputs.beds)
     out_days = []
     for instant, local_day, bed_count, result in zip(inputs.instants, inputs.local_days,
                                                      inputs.beds, results, strict=True):
@@ -218,9 +274,8 @@ def forecast_with_inputs(state: UnitState, record: ModelRecord, *, days: int = D
         "days": out_days,
         "stays": inputs.predictions.records(),
     }
-    if paths > 0 and all(b is not None for b in inputs.beds):
-        sims = simulate_paths(p_present, inputs.booked, inputs.streams, inputs.census_at, paths,
-                              np.random.default_rng(seed))
+    if backdrop.draws is not None:
+        sims = backdrop.draws.counts(p_present)
         payload["p_over_capacity_any_day"] = float(
             np.mean((sims > np.asarray(inputs.beds)[None, :]).any(axis=1)))
     return payload, inputs

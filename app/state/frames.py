@@ -148,35 +148,52 @@ def latest_observations(observations: pd.DataFrame, at: pd.Timestamp,
 
     Only rows with ``observed_at <= at`` and ``recorded_at <= at`` count, and each
     (stay, observed_at, name) takes the value recorded last by ``at`` (corrections).
-    Returns columns stay_id, name, observed_at, value, previous.
+    Returns columns stay_id, name, observed_at, value, previous, ordered by stay and name.
+    A page recomputes this after every score, so it works on plain arrays.
     """
     obs = observations
+    keep = ((obs["observed_at"] <= at) & (obs["recorded_at"] <= at)).to_numpy()
     if stay_ids is not None:
-        obs = obs.loc[obs["stay_id"].isin(stay_ids)]
-    obs = obs.loc[(obs["observed_at"] <= at) & (obs["recorded_at"] <= at)]
-    if obs.empty:
+        keep &= obs["stay_id"].isin(stay_ids).to_numpy()
+    if not keep.any():
         return pd.DataFrame({"stay_id": pd.Series(dtype=object), "name": pd.Series(dtype=object),
                              "observed_at": pd.Series(dtype="datetime64[ns, UTC]"),
                              "value": pd.Series(dtype=float), "previous": pd.Series(dtype=float)})
-    obs = obs.sort_values(["stay_id", "name", "observed_at", "recorded_at"], kind="mergesort")
-    obs = obs.drop_duplicates(["stay_id", "name", "observed_at"], keep="last")
-    obs = obs.assign(previous=obs.groupby(["stay_id", "name"], sort=False)["value"].shift(1))
-    last = obs.drop_duplicates(["stay_id", "name"], keep="last")
-    return last[["stay_id", "name", "observed_at", "value", "previous"]].reset_index(drop=True)
+    stay, stays = pd.factorize(obs["stay_id"].to_numpy()[keep], sort=True)
+    name, names = pd.factorize(obs["name"].to_numpy()[keep], sort=True)
+    observed = obs["observed_at"].array.asi8[keep]
+    recorded = obs["recorded_at"].array.asi8[keep]
+    value = obs["value"].to_numpy(dtype=float)[keep]
+    order = np.lexsort((recorded, observed, name, stay))  # stable, like a mergesort
+    stay, name, observed, value = stay[order], name[order], observed[order], value[order]
+    # The last recorded row of each (stay, name, observed_at): corrections replace values.
+    same_series = np.r_[(stay[1:] == stay[:-1]) & (name[1:] == name[:-1]), False]
+    last_of_instant = ~(same_series & np.r_[observed[1:] == observed[:-1], False])
+    stay, name = stay[last_of_instant], name[last_of_instant]
+    observed, value = observed[last_of_instant], value[last_of_instant]
+    continues = np.r_[False, (stay[1:] == stay[:-1]) & (name[1:] == name[:-1])]
+    previous = np.where(continues, np.r_[np.nan, value[:-1]], np.nan)
+    last = np.r_[~continues[1:], True]
+    return pd.DataFrame({
+        "stay_id": stays[stay[last]], "name": names[name[last]],
+        "observed_at": pd.to_datetime(observed[last], utc=True),
+        "value": value[last], "previous": previous[last]})
 
 
 def _widen(stays: pd.DataFrame, latest: pd.DataFrame, at: pd.Timestamp) -> pd.DataFrame:
-    """One column triple per observation name, joined onto the stays in one merge."""
+    """One column triple per observation name (value, change, hours), aligned to the stays."""
     if latest.empty:
         return stays
-    values = latest.assign(
-        change=latest["value"] - latest["previous"],
-        hours=(at - latest["observed_at"]).dt.total_seconds() / 3600.0,
-    ).pivot(index="stay_id", columns="name", values=["value", "change", "hours"])
-    names = sorted(latest["name"].unique())
-    wide = pd.DataFrame(index=values.index)
-    for name in names:
-        wide[str(name)] = values[("value", name)].astype(float)
-        wide[f"{name}_change"] = values[("change", name)].astype(float)
-        wide[f"{name}_hours"] = values[("hours", name)].astype(float)
-    return stays.merge(wide, how="left", left_on="stay_id", right_index=True)
+    row = pd.Index(stays["stay_id"]).get_indexer(latest["stay_id"])
+    hours = (at.value - latest["observed_at"].array.asi8) / 3.6e12
+    value = latest["value"].to_numpy(dtype=float)
+    change = value - latest["previous"].to_numpy(dtype=float)
+    names = latest["name"].to_numpy()
+    columns: dict[str, np.ndarray] = {}
+    for name in sorted(set(names)):
+        found = (names == name) & (row >= 0)
+        for suffix, source in (("", value), ("_change", change), ("_hours", hours)):
+            column = np.full(len(stays), np.nan)
+            column[row[found]] = source[found]
+            columns[f"{name}{suffix}"] = column
+    return stays.assign(**columns)

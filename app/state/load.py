@@ -2,7 +2,8 @@
 
 from __future__ import annotations
 
-from datetime import datetime
+from dataclasses import replace
+from datetime import datetime, timedelta
 from zoneinfo import ZoneInfo
 
 import pandas as pd
@@ -30,12 +31,39 @@ def _utc_column(values: list[datetime | None]) -> pd.Series:
                      dtype="datetime64[ns, UTC]")
 
 
+def _observations(session: Session, unit: str, as_of: datetime, *,
+                  current_only: bool) -> pd.DataFrame:
+    query = (select(*[getattr(Observation, c) for c in OBSERVATION_COLUMNS])
+             .join(Stay, Observation.stay_id == Stay.stay_id)
+             .where(Stay.unit == unit, Stay.admitted_at <= as_of,
+                    Observation.observed_at <= as_of, Observation.recorded_at <= as_of))
+    if current_only:
+        query = query.where((Stay.discharged_at.is_(None)) | (Stay.discharged_at > as_of))
+    rows = session.execute(query.order_by(
+        Observation.stay_id, Observation.name, Observation.observed_at,
+        Observation.recorded_at)).all()
+    observations = pd.DataFrame(rows, columns=OBSERVATION_COLUMNS)
+    observations["observed_at"] = _utc_column(list(observations["observed_at"]))
+    observations["recorded_at"] = _utc_column(list(observations["recorded_at"]))
+    observations["value"] = observations["value"].astype(float)
+    return observations
+
+
+def with_current_observations(session: Session, state: UnitState) -> UnitState:
+    """``state`` with its current stays' observations read again (scores come in often;
+    stays and bookings change with imports). Earlier stays' observations are dropped."""
+    as_of = state.as_of.to_pydatetime()
+    return replace(state, observations=_observations(session, state.unit, as_of,
+                                                     current_only=True))
+
+
 def load_state(session: Session, unit: str, as_of: datetime, tz: ZoneInfo, *,
                with_history: bool = True) -> UnitState:
     """What was known about ``unit`` at ``as_of``.
 
     With ``with_history=False`` only the stays in the unit at ``as_of`` (and their
-    observations) are loaded: enough for a forecast from a trained model, and much faster.
+    observations) and the bookings planned from yesterday on are loaded: enough for a
+    forecast from a trained model, and much faster.
     """
     stored_unit = repo.get_unit(session, unit)
     if stored_unit is None:
@@ -54,25 +82,16 @@ def load_state(session: Session, unit: str, as_of: datetime, tz: ZoneInfo, *,
     stays["outcome"] = stays["outcome"].where(stays["discharged_at"].notna(), None)
     stays["age"] = pd.to_numeric(stays["age"], errors="coerce").astype(float)
 
-    obs_query = (select(*[getattr(Observation, c) for c in OBSERVATION_COLUMNS])
-                 .join(Stay, Observation.stay_id == Stay.stay_id)
-                 .where(Stay.unit == unit, Stay.admitted_at <= as_of,
-                        Observation.observed_at <= as_of, Observation.recorded_at <= as_of))
-    if not with_history:
-        obs_query = obs_query.where(
-            (Stay.discharged_at.is_(None)) | (Stay.discharged_at > as_of))
-    obs_rows = session.execute(obs_query.order_by(
-        Observation.stay_id, Observation.name, Observation.observed_at,
-        Observation.recorded_at)).all()
-    observations = pd.DataFrame(obs_rows, columns=OBSERVATION_COLUMNS)
-    observations["observed_at"] = _utc_column(list(observations["observed_at"]))
-    observations["recorded_at"] = _utc_column(list(observations["recorded_at"]))
-    observations["value"] = observations["value"].astype(float)
+    observations = _observations(session, unit, as_of, current_only=not with_history)
 
+    booking_query = select(*[getattr(Booking, c) for c in BOOKING_COLUMNS]).where(
+        Booking.unit == unit, Booking.booked_at <= as_of)
+    if not with_history:
+        # A forecast needs bookings planned for today on; a day's margin for the zone.
+        yesterday = as_of.astimezone(tz).date() - timedelta(days=1)
+        booking_query = booking_query.where(Booking.planned_date >= yesterday)
     booking_rows = session.execute(
-        select(*[getattr(Booking, c) for c in BOOKING_COLUMNS])
-        .where(Booking.unit == unit, Booking.booked_at <= as_of)
-        .order_by(Booking.planned_date, Booking.booking_id)).all()
+        booking_query.order_by(Booking.planned_date, Booking.booking_id)).all()
     bookings = pd.DataFrame(booking_rows, columns=BOOKING_COLUMNS)
     cancelled = [c if c is not None and c <= as_of else None for c in bookings["cancelled_at"]]
     bookings["booked_at"] = _utc_column(list(bookings["booked_at"]))

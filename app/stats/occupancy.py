@@ -45,8 +45,9 @@ from app.stats.poisson_binomial import (
 FloatArray = npt.NDArray[np.float64]
 QUANTILE_LEVELS = (0.025, 0.05, 0.1, 0.25, 0.5, 0.75, 0.9, 0.95, 0.975)
 
-__all__ = ["ArrivalStream", "BookedAdmissions", "OccupancyDay", "StayDistribution",
-           "StayMixture", "occupancy_days", "simulate_paths", "stream_presence"]
+__all__ = ["ArrivalStream", "BookedAdmissions", "Newcomers", "OccupancyDay", "PathDraws",
+           "StayDistribution", "StayMixture", "draw_paths", "newcomers", "occupancy_days",
+           "simulate_paths", "stream_presence", "with_current"]
 
 
 class StayDistribution(Protocol):
@@ -67,7 +68,8 @@ class StayMixture:
     def __post_init__(self) -> None:
         w = np.asarray(self.weights, dtype=float)
         if w.size != len(self.components) or w.size == 0 or np.any(w < 0) or w.sum() <= 0:
-            raise ValueError(f"weights: need one non-negative weight per component, got {self.weights!r}")
+            raise ValueError("weights: need one non-negative weight per component, "
+                             f"got {self.weights!r}")
         object.__setattr__(self, "weights", tuple(float(v) for v in w / w.sum()))
 
     def sf(self, x: npt.ArrayLike) -> FloatArray:
@@ -120,7 +122,7 @@ class ArrivalStream:
 
 @dataclass(frozen=True)
 class BookedAdmissions:
-    """Known bookings: each goes ahead with ``p_go`` and is admitted ``admit_at`` days after as_of."""
+    """Known bookings: each goes ahead with ``p_go``, admitted ``admit_at`` days after as_of."""
 
     p_go: tuple[float, ...]
     admit_at: tuple[float, ...]
@@ -186,6 +188,36 @@ def _stream_pmf(presence_k: FloatArray, size: float | None) -> FloatArray:
     return convolve_pmfs(*parts) if parts else np.ones(1)
 
 
+@dataclass(frozen=True)
+class Newcomers:
+    """Patients not in the unit yet (booked, and still to come), at each census instant.
+
+    A new score for a current patient cannot change this part, so a page keeps it while
+    scores come in and only redoes the current patients' part.
+    """
+
+    pmfs: tuple[FloatArray, ...]
+    components: tuple[dict[str, float], ...]
+
+
+def newcomers(booked: BookedAdmissions, streams: Sequence[ArrivalStream],
+              census_at: npt.ArrayLike) -> Newcomers:
+    """The exact occupancy distribution of bookings and arrival streams at each instant."""
+    h = np.asarray(census_at, dtype=float)
+    p_booked = booked.p_present(h)
+    presence = [stream_presence(s, h) for s in streams]
+    pmfs, components = [], []
+    for k in range(h.size):
+        parts = [poisson_binomial_pmf(p_booked[:, k])]
+        counts = {"emergency": 0.0, "elective": float(p_booked[:, k].sum())}
+        for stream, present in zip(streams, presence, strict=True):
+            parts.append(_stream_pmf(present[:, k], stream.size))
+            counts[stream.name] += float(present[:, k].sum())
+        pmfs.append(convolve_pmfs(*parts))
+        components.append(counts)
+    return Newcomers(tuple(pmfs), tuple(components))
+
+
 def occupancy_days(
     p_current: npt.ArrayLike,
     booked: BookedAdmissions,
@@ -210,26 +242,65 @@ def occupancy_days(
     -------
     list of OccupancyDay
     """
-    h = np.asarray(census_at, dtype=float)
-    p_now = np.asarray(p_current, dtype=float).reshape(-1, h.size)
-    p_booked = booked.p_present(h)
-    presence = {id(s): stream_presence(s, h) for s in streams}
+    return with_current(p_current, newcomers(booked, streams, census_at), beds)
+
+
+def with_current(p_current: npt.ArrayLike, others: Newcomers,
+                 beds: Sequence[int | None]) -> list[OccupancyDay]:
+    """Add the current stays (Poisson-binomial) to the newcomers, instant by instant."""
+    n_instants = len(others.pmfs)
+    p_now = np.asarray(p_current, dtype=float).reshape(-1, n_instants)
     out = []
-    for k in range(h.size):
-        parts = [poisson_binomial_pmf(p_now[:, k]), poisson_binomial_pmf(p_booked[:, k])]
-        components = {"current": float(p_now[:, k].sum()), "emergency": 0.0,
-                      "elective": float(p_booked[:, k].sum())}
-        for stream in streams:
-            column = presence[id(stream)][:, k]
-            parts.append(_stream_pmf(column, stream.size))
-            components[stream.name] += float(column.sum())
-        pmf = convolve_pmfs(*parts)
+    for k in range(n_instants):
+        pmf = convolve_pmfs(poisson_binomial_pmf(p_now[:, k]), others.pmfs[k])
+        components = {"current": float(p_now[:, k].sum()), **others.components[k]}
         quantiles = dict(zip((f"{q:g}" for q in QUANTILE_LEVELS),
                              (int(v) for v in pmf_quantile(pmf, QUANTILE_LEVELS)), strict=True))
         over = None if beds[k] is None else float(pmf_sf_over(pmf, beds[k]))
         out.append(OccupancyDay(pmf=pmf, mean=pmf_mean(pmf), quantiles=quantiles,
                                 p_over_capacity=over, components=components))
     return out
+
+
+@dataclass(frozen=True, eq=False)
+class PathDraws:
+    """The random part of ``n_paths`` joint paths that does not depend on current patients'
+    probabilities: one uniform per path and current stay, and the newcomers' counts."""
+
+    stay_draws: FloatArray
+    newcomer_counts: npt.NDArray[np.int64]
+
+    def counts(self, p_current: npt.ArrayLike) -> npt.NDArray[np.int64]:
+        """Occupancy along every path, shape (n_paths, K): current stays and newcomers."""
+        counts = self.newcomer_counts.copy()
+        p_now = np.asarray(p_current, dtype=float).reshape(-1, counts.shape[1])
+        if p_now.shape[0] != self.stay_draws.shape[1]:
+            raise ValueError(f"p_current: drawn for {self.stay_draws.shape[1]} stays, "
+                             f"got {p_now.shape[0]}")
+        for k in range(counts.shape[1]):
+            counts[:, k] += (self.stay_draws < p_now[:, k]).sum(axis=1)
+        return counts
+
+
+def draw_paths(
+    n_stays: int,
+    booked: BookedAdmissions,
+    streams: Sequence[ArrivalStream],
+    census_at: npt.ArrayLike,
+    n_paths: int,
+    rng: np.random.Generator,
+) -> PathDraws:
+    """Draw the joint paths once; :meth:`PathDraws.counts` adds any current probabilities."""
+    h = np.asarray(census_at, dtype=float)
+    stay_draws = rng.random((n_paths, n_stays)) if n_stays else np.zeros((n_paths, 0))
+    counts = np.zeros((n_paths, h.size), dtype=np.int64)
+    for g, a, stay in zip(booked.p_go, booked.admit_at, booked.stays, strict=True):
+        goes = rng.random(n_paths) < g
+        length = np.asarray(stay.sample(n_paths, rng), dtype=float)
+        counts += (goes[:, None] & (h[None, :] >= a) & (h[None, :] < a + length[:, None]))
+    for stream in streams:
+        _add_stream_paths(counts, stream, h, rng)
+    return PathDraws(stay_draws, counts)
 
 
 def simulate_paths(
@@ -243,18 +314,7 @@ def simulate_paths(
     """Occupancy at every instant along ``n_paths`` joint paths; shape (n_paths, K)."""
     h = np.asarray(census_at, dtype=float)
     p_now = np.asarray(p_current, dtype=float).reshape(-1, h.size)
-    counts = np.zeros((n_paths, h.size), dtype=np.int64)
-    if p_now.shape[0]:
-        u = rng.random((n_paths, p_now.shape[0]))
-        for k in range(h.size):
-            counts[:, k] += (u < p_now[:, k]).sum(axis=1)
-    for g, a, stay in zip(booked.p_go, booked.admit_at, booked.stays, strict=True):
-        goes = rng.random(n_paths) < g
-        length = np.asarray(stay.sample(n_paths, rng), dtype=float)
-        counts += (goes[:, None] & (h[None, :] >= a) & (h[None, :] < a + length[:, None]))
-    for stream in streams:
-        _add_stream_paths(counts, stream, h, rng)
-    return counts
+    return draw_paths(p_now.shape[0], booked, streams, h, n_paths, rng).counts(p_now)
 
 
 def _add_stream_paths(counts: npt.NDArray[np.int64], stream: ArrivalStream, h: FloatArray,

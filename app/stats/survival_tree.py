@@ -133,16 +133,20 @@ class FeatureSpec:
         if self.kind == "category":
             lookup = {c: float(i) for i, c in enumerate(self.categories)}
             keys = _category_keys(values)
-            return pd.Series(keys).map(lookup).to_numpy(dtype=float)
-        return np.asarray(pd.to_numeric(pd.Series(np.asarray(values, dtype=object)),
-                                        errors="coerce"), dtype=float)
+            return np.fromiter((lookup.get(k, np.nan) for k in keys), dtype=float,
+                               count=len(keys))
+        try:  # numbers and missing values (None, NaN) convert directly
+            return np.asarray(values, dtype=float).reshape(-1)
+        except (TypeError, ValueError):  # text among them: unreadable values are missing
+            return np.asarray(pd.to_numeric(pd.Series(np.asarray(values, dtype=object)),
+                                            errors="coerce"), dtype=float)
 
 
 def _category_keys(values: Sequence[Any] | npt.ArrayLike) -> npt.NDArray[np.object_]:
     """Values as text, missing (None, NaN, empty) as ""."""
-    series = pd.Series(np.asarray(values, dtype=object))
-    missing = series.isna().to_numpy()
-    keys = series.astype(str).to_numpy(dtype=object)
+    array = np.asarray(values, dtype=object).reshape(-1)
+    missing = pd.isna(array)
+    keys = np.array([str(v) for v in array], dtype=object)
     keys[missing] = ""
     return keys
 
@@ -685,7 +689,7 @@ def time_of_cumulative_hazard(profile: DischargeProfile, rates: npt.ArrayLike,
     hi = b[rows, step + 1].copy()
     start_days = d[rows] + (lo - b[rows, 0])
     base = lo.copy()
-    for _ in range(40):  # 2^-40 of a day is far below a second
+    for _ in range(24):  # 2^-24 of a day is 5 ms
         mid = 0.5 * (lo + hi)
         enough = profile.exposure(base, mid, start_days) >= need
         hi = np.where(enough, mid, hi)

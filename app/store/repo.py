@@ -3,12 +3,15 @@
 from __future__ import annotations
 
 from collections.abc import Iterator, Sequence
+from dataclasses import dataclass
+from datetime import datetime
 from typing import Any, TypeVar
 
 from sqlalchemy import insert, select, update
 from sqlalchemy.orm import Session
 
 from app.store.models import AuditEvent, CensusRow, CensusSnapshot, Stay, Unit, UnitBeds
+from app.timeutil import as_utc
 
 T = TypeVar("T")
 
@@ -105,13 +108,46 @@ def latest_beds(session: Session, unit: str, stay_ids: Sequence[str]) -> dict[st
     return {stay_id: bed for stay_id, bed in rows if bed}
 
 
-def data_marker(session: Session) -> int:
-    """Changes whenever data is written (every write goes through an import batch)."""
-    from sqlalchemy import func
+@dataclass(frozen=True)
+class DataMarkers:
+    """Where the stored data stands: every write is an import batch (one file or one form).
+
+    The markers count committed batches rather than take the newest id: on PostgreSQL
+    several writers run at once, and a batch given a lower id can commit after one with a
+    higher id, which would leave the newest id unchanged. Batches are never deleted, so a
+    count changes with every commit, whatever the order.
+    """
+
+    latest: int  # how many batches of any kind are stored
+    structure: int  # how many batches that may change stays, bookings, units or bed plans
+    written_at: datetime | None  # when the newest batch was stored
+
+
+def data_markers(session: Session) -> DataMarkers:
+    """The data markers, in one query."""
+    from sqlalchemy import case, func
 
     from app.store.models import ImportBatch
 
-    return int(session.scalar(select(func.max(ImportBatch.id))) or 0)
+    latest, structure, written_at = session.execute(select(
+        func.count(ImportBatch.id),
+        func.count(case((ImportBatch.kind != "observations", ImportBatch.id))),
+        func.max(ImportBatch.created_at))).one()
+    return DataMarkers(int(latest or 0), int(structure or 0),
+                       None if written_at is None else as_utc(written_at))
+
+
+def data_marker(session: Session) -> int:
+    """Changes whenever data is written (every write goes through an import batch)."""
+    return data_markers(session).latest
+
+
+def stay_in_unit(session: Session, unit: str, stay_id: str, at: datetime) -> bool:
+    """Whether the stay is in the unit at ``at`` (admitted by then, not discharged by then)."""
+    found = session.scalar(select(Stay.stay_id).where(
+        Stay.stay_id == stay_id, Stay.unit == unit, Stay.admitted_at <= at,
+        Stay.discharged_at.is_(None) | (Stay.discharged_at > at)))
+    return found is not None
 
 
 def latest_snapshot_at(session: Session, unit: str) -> Any:

@@ -69,14 +69,15 @@ def post_observation(unit: str, body: ScoreIn, session: SessionDep,
     observed = body.observed_at or now.isoformat()
     data = _one_row_csv(["stay_id", "observed_at", "name", "value", "recorded_at"],
                         [body.stay_id, observed, body.name, repr(body.value), now.isoformat()])
-    if body.stay_id not in set(current(session, unit).state.current_stays()["stay_id"]):
+    if not repo.stay_in_unit(session, unit, body.stay_id, now):
         raise HTTPException(status_code=422, detail=f"{body.stay_id} is not in {unit} now")
     try:
         import_file(session, "observations", data, "api", tz=get_settings().tz,
                     actor=actor.username)
     except ImportRefused as refused:
         raise HTTPException(status_code=422, detail=[
-            {"column": p.column, "value": p.value, "why": p.why} for p in refused.problems]) from None
+            {"column": p.column, "value": p.value, "why": p.why}
+            for p in refused.problems]) from None
     session.flush()
     shown = current(session, unit)
     stay = next((s for s in (shown.forecast or {}).get("stays", [])

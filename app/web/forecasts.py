@@ -2,8 +2,11 @@
 
 Forecasts are exact convolutions plus 5,000 joint paths, so a page view would otherwise
 redo the same work many times a minute at a huddle. Any write (every write is an import
-batch) changes the data marker and so the key. A forecast made "now" is stored at most
-once an hour per unit and model, to be compared later with the census that followed.
+batch) changes the data marker and so the key. A score changes only its patient's part: the
+backdrop (bookings, arrivals, the paths' draws) is kept until stays, bookings, the model or
+the minute change, and only the current patients' probabilities are computed again. A
+forecast made "now" is stored at most once an hour per unit and model, to be compared later
+with the census that followed.
 """
 
 from __future__ import annotations
@@ -20,13 +23,16 @@ from sqlalchemy.orm import Session
 
 from app.config import current_time, get_settings
 from app.forecast.service import (
+    Backdrop,
+    ModelRecord,
     NoModel,
     expected_admissions,
-    forecast_with_inputs,
+    forecast_backdrop,
+    forecast_on,
     model_for,
     store_forecast,
 )
-from app.state import UnitState, load_state
+from app.state import UnitState, load_state, with_current_observations
 from app.store import repo
 from app.store.models import StoredForecast
 
@@ -50,30 +56,44 @@ class Shown:
 
 
 _cache: OrderedDict[tuple[Any, ...], Shown] = OrderedDict()
+_backdrops: OrderedDict[tuple[Any, ...], tuple[Backdrop, UnitState]] = OrderedDict()
 _lock = threading.Lock()
 _compute_lock = threading.Lock()
 _stored: dict[tuple[Any, ...], datetime] = {}
+BACKDROPS = 16
+
+
+def forecast_moment(now: datetime, written_at: datetime | None) -> datetime:
+    """The instant a "now" forecast is made as of: the current minute, or the end of it when
+    data was written during it, so that a score just entered counts at once (the "as of"
+    rule needs ``recorded_at <= as_of``). Forecasts stay shareable for a whole minute."""
+    moment = now.replace(second=0, microsecond=0)
+    if written_at is not None and moment < written_at <= now + timedelta(minutes=1):
+        moment += timedelta(minutes=1)
+    return moment
 
 
 def current(session: Session, unit: str, *, as_of: datetime | None = None,
             days: int = 7) -> Shown:
     """The forecast for ``unit`` now (to the minute) or at ``as_of``."""
     tz = get_settings().tz
-    moment = (as_of or current_time()).astimezone(UTC)
+    markers = repo.data_markers(session)
     if as_of is None:
-        moment = moment.replace(second=0, microsecond=0)
-    marker = repo.data_marker(session)
+        moment = forecast_moment(current_time().astimezone(UTC), markers.written_at)
+    else:
+        moment = as_of.astimezone(UTC)
+    where = str(session.get_bind().url)
     try:
         record = model_for(session, unit, moment)
     except NoModel as exc:
-        key = (str(session.get_bind().url), unit, None, moment, days, marker)
+        key = (where, unit, None, moment, days, markers.latest)
         with _lock:
             if key in _cache:
                 return _cache[key]
         shown = Shown(None, load_state(session, unit, moment, tz, with_history=False), str(exc))
         _remember(key, shown)
         return shown
-    key = (str(session.get_bind().url), unit, record.id, moment, days, marker)
+    key = (where, unit, record.id, moment, days, markers.latest)
     with _lock:
         if key in _cache:
             _cache.move_to_end(key)
@@ -84,13 +104,33 @@ def current(session: Session, unit: str, *, as_of: datetime | None = None,
         with _lock:
             if key in _cache:
                 return _cache[key]
-        state = load_state(session, unit, moment, tz, with_history=False)
-        forecast, inputs = forecast_with_inputs(state, record, days=days)
+        backdrop, state = _backdrop(session, (where, unit, record.id, moment, days,
+                                              markers.structure), record, days)
+        forecast, inputs = forecast_on(backdrop, state, record)
         shown = Shown(forecast, state, None, expected_admissions(inputs))
         _remember(key, shown)
     if as_of is None:
-        _store_now_and_then(session, shown.forecast, (key[0], unit, record.id, marker), moment)
+        _store_now_and_then(session, shown.forecast, (where, unit, record.id, markers.latest),
+                            moment)
     return shown
+
+
+def _backdrop(session: Session, key: tuple[Any, ...], record: ModelRecord, days: int
+              ) -> tuple[Backdrop, UnitState]:
+    """The forecast's backdrop and a state with the current observations. Only scores came
+    in since the backdrop was made when its key (with the structure marker) is unchanged."""
+    found = _backdrops.get(key)
+    if found is None:
+        _, unit, _, moment, _, _ = key
+        state = load_state(session, unit, moment, get_settings().tz, with_history=False)
+        backdrop = forecast_backdrop(state, record, days=days)
+        _backdrops[key] = (backdrop, state)
+        while len(_backdrops) > BACKDROPS:
+            _backdrops.popitem(last=False)
+        return backdrop, state
+    _backdrops.move_to_end(key)
+    backdrop, state = found
+    return backdrop, with_current_observations(session, state)
 
 
 def _remember(key: tuple[Any, ...], shown: Shown) -> None:

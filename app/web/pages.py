@@ -138,8 +138,7 @@ def enter_score(unit: str, session: SessionDep, actor: ScoresActor,
     """A score or flag from the nurse in charge, through the same checks as an import."""
     _unit_or_404(session, unit)
     now = current_time().replace(microsecond=0)
-    current_ids = set(current(session, unit).state.current_stays()["stay_id"])
-    if stay_id not in current_ids:
+    if not repo.stay_in_unit(session, unit, stay_id, now):
         return _back(unit, f"{stay_id} is not in {unit} now; nothing was recorded", stay_id)
     data = _one_row_csv(["stay_id", "observed_at", "name", "value", "recorded_at"],
                         [stay_id, now.isoformat(), name.strip().lower(), value.strip(),
@@ -163,7 +162,8 @@ def _back(unit: str, message: str, stay_id: str | None = None) -> RedirectRespon
 
 @router.get("/units/{unit}/booking", response_class=HTMLResponse)
 def booking_page(request: Request, unit: str, session: SessionDep, actor: ReadActor,
-                 planned_date: date | None = None, age: Annotated[int | None, Query(ge=0, le=120)] = None,
+                 planned_date: date | None = None,
+                 age: Annotated[int | None, Query(ge=0, le=120)] = None,
                  specialty: str | None = None, procedure: str | None = None,
                  message: str | None = None) -> Response:
     """Booking check for the surgical scheduler, with the next 14 days to choose from."""
@@ -196,7 +196,8 @@ def _specialties(shown: Shown) -> list[str]:
 @router.post("/units/{unit}/booking")
 def book(unit: str, session: SessionDep, actor: BookingsActor,
          planned_date: Annotated[date, Form()], age: Annotated[str, Form()] = "",
-         specialty: Annotated[str, Form()] = "", procedure: Annotated[str, Form()] = "") -> Response:
+         specialty: Annotated[str, Form()] = "",
+         procedure: Annotated[str, Form()] = "") -> Response:
     """Store a booking so later forecasts include it."""
     import secrets
 

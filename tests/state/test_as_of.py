@@ -55,6 +55,9 @@ def build_files(stays, bookings, cut: float | None) -> dict[str, bytes]:
             dis = None
         outcome = "home" if dis is not None else ""
         stay_rows.append(f"S-{i},U-T,{ts(adm)},{'' if dis is None else ts(dis)},{kind},{outcome},{age}")
+        # The importer refuses two values for one stay, time and name recorded at the same
+        # instant (a correction needs a later recorded_at): keep the first of such a pair.
+        recorded_pairs: set[tuple[int, int]] = set()
         for off, value, delay, correction in observations:
             observed = adm + off
             if los is not None and observed > adm + los:
@@ -63,6 +66,9 @@ def build_files(stays, bookings, cut: float | None) -> dict[str, bytes]:
             if correction is not None:
                 entries.append((correction[1], observed + delay + correction[0]))
             for v, recorded in entries:
+                if (observed, recorded) in recorded_pairs:
+                    continue
+                recorded_pairs.add((observed, recorded))
                 if cut is not None and (observed > cut or recorded > cut):
                     continue
                 obs_rows.append(f"S-{i},{ts(observed)},sofa,{v},{ts(recorded)}")
