@@ -196,4 +196,4 @@ def _widen(stays: pd.DataFrame, latest: pd.DataFrame, at: pd.Timestamp) -> pd.Da
             column = np.full(len(stays), np.nan)
             column[row[found]] = source[found]
             columns[f"{name}{suffix}"] = column
-    return stays.assign(**columns)
+    return pd.concat([stays, pd.DataFrame(columns, index=stays.index)], axis=1)

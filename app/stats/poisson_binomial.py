@@ -22,6 +22,7 @@ Computational Statistics & Data Analysis 59:41-51. (Named in METHODS.md.)
 from __future__ import annotations
 
 import math
+from collections.abc import Callable
 
 import numpy as np
 import numpy.typing as npt
@@ -159,17 +160,29 @@ def poisson_pmf(mean: float, kmax: int | None = None, *, tail: float = DEFAULT_T
     if mean == 0:
         return np.ones(1) if not kmax else np.r_[1.0, np.zeros(kmax)]
     if kmax is None:
-        # Direct evaluation: building a frozen scipy distribution costs milliseconds, and a
-        # forecast needs dozens of these pmfs.
-        if not 0 < tail < 1:
-            raise ValueError(f"tail: must be in (0, 1), got {tail!r}")
-        k = np.arange(int(mean + 12 * math.sqrt(mean) + 40))
-        sf = stats.poisson.sf(k, mean)
-        kmax = int(np.argmax(sf < tail))
-        pmf = np.exp(k[: kmax + 1] * math.log(mean) - mean - special.gammaln(k[: kmax + 1] + 1))
-        pmf[-1] += sf[kmax]
-        return pmf
+        found = _direct(mean, math.sqrt(mean), tail, lambda k: stats.poisson.sf(k, mean),
+                        lambda k: k * math.log(mean) - mean - special.gammaln(k + 1))
+        if found is not None:
+            return found
     return _truncated(stats.poisson(mean), kmax, tail)
+
+
+def _direct(mean: float, sd: float, tail: float, sf: Callable[[IntArray], FloatArray],
+            logpmf: Callable[[IntArray], FloatArray]) -> FloatArray | None:
+    """pmf on 0..kmax with kmax the smallest k where P(X > k) < ``tail``, evaluated directly:
+    building a frozen scipy distribution costs milliseconds, and a forecast needs dozens of
+    these pmfs. None when the tail reaches past mean + 12 sd + 40 (then scipy searches)."""
+    if not 0 < tail < 1:
+        raise ValueError(f"tail: must be in (0, 1), got {tail!r}")
+    k = np.arange(int(mean + 12 * sd + 40))
+    upper = np.asarray(sf(k), dtype=float)
+    below = upper < tail
+    if not below.any():
+        return None
+    kmax = int(np.argmax(below))
+    pmf = np.exp(logpmf(k[: kmax + 1]))
+    pmf[-1] += upper[kmax]
+    return pmf
 
 
 def negative_binomial_pmf(
@@ -199,7 +212,16 @@ def negative_binomial_pmf(
         raise ValueError(f"size: must be finite and > 0, got {size!r}")
     if mean == 0:
         return np.ones(1) if not kmax else np.r_[1.0, np.zeros(kmax)]
-    return _truncated(stats.nbinom(size, size / (size + mean)), kmax, tail)
+    p = size / (size + mean)
+    if kmax is None:
+        found = _direct(mean, math.sqrt(mean + mean * mean / size), tail,
+                        lambda k: stats.nbinom.sf(k, size, p),
+                        lambda k: (special.gammaln(k + size) - special.gammaln(size)
+                                   - special.gammaln(k + 1) + size * math.log(p)
+                                   + k * math.log1p(-p)))
+        if found is not None:
+            return found
+    return _truncated(stats.nbinom(size, p), kmax, tail)
 
 
 def pmf_mean(pmf: npt.ArrayLike) -> float:
