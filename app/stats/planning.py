@@ -2,7 +2,7 @@
 
 Demand
 ------
-Patients arrive in streams (:class:`ArrivalStream`: emergency or other unbooked arrivals, a
+Patients arrive in streams (:class:`DemandStream`: emergency or other unbooked arrivals, a
 Poisson or negative binomial count per day with a weekday pattern; :class:`ElectiveList`: booked
 operations per weekday, each cancelled with a given probability). Each arrival belongs to a
 :class:`PatientGroup`, chosen by its stream's group weights, and draws its stay from that group's
@@ -82,7 +82,7 @@ import dataclasses
 import heapq
 import math
 import zlib
-from collections.abc import Iterable, Mapping, Sequence
+from collections.abc import Callable, Iterable, Mapping, Sequence
 from dataclasses import dataclass, field
 from functools import lru_cache
 from typing import Any
@@ -96,10 +96,10 @@ from app.stats.erlang import beds_for_blocking, erlang_b, mean_occupancy
 from app.stats.phasetype import Coxian, PhaseType, distribution_from_dict
 
 __all__ = [
-    "ArrivalStream",
     "BedsNeeded",
     "CapacityCurve",
     "Demand",
+    "DemandStream",
     "ElectiveList",
     "Estimate",
     "PatientGroup",
@@ -205,8 +205,10 @@ class PatientGroup:
 
 
 @dataclass(frozen=True)
-class ArrivalStream:
+class DemandStream:
     """Unbooked arrivals (emergencies, typically): a random count per day.
+
+    (Not ``app.stats.occupancy.ArrivalStream``, the forecast's hourly arrival slots.)
 
     Parameters
     ----------
@@ -245,7 +247,8 @@ class ArrivalStream:
         if self.dispersion is not None:
             size = float(self.dispersion)
             if not (math.isfinite(size) and size > 0):
-                raise ValueError(f"dispersion: must be None or a size > 0, got {self.dispersion!r}")
+                raise ValueError(
+                    f"dispersion: must be None or a size > 0, got {self.dispersion!r}")
             object.__setattr__(self, "dispersion", size)
         object.__setattr__(self, "hour_profile", _hour_profile(self.hour_profile, "hour_profile"))
 
@@ -256,7 +259,7 @@ class ArrivalStream:
     def to_dict(self) -> dict[str, Any]:
         """JSON-ready dict; exact round trip with :meth:`from_dict`."""
         return {
-            "kind": "arrival_stream",
+            "kind": "demand_stream",
             "name": self.name,
             "admission_type": self.admission_type,
             "rate_by_weekday": list(self.rate_by_weekday),
@@ -266,7 +269,7 @@ class ArrivalStream:
         }
 
     @classmethod
-    def from_dict(cls, data: Mapping[str, Any]) -> ArrivalStream:
+    def from_dict(cls, data: Mapping[str, Any]) -> DemandStream:
         """Inverse of :meth:`to_dict`."""
         return cls(
             name=str(data["name"]),
@@ -354,10 +357,10 @@ def _check_name(value: object, name: str) -> None:
         raise ValueError(f"{name}: must be a non-empty string, got {value!r}")
 
 
-def _stream_from_dict(data: Mapping[str, Any]) -> ArrivalStream | ElectiveList:
+def _stream_from_dict(data: Mapping[str, Any]) -> DemandStream | ElectiveList:
     kind = data.get("kind")
-    if kind == "arrival_stream":
-        return ArrivalStream.from_dict(data)
+    if kind == "demand_stream":
+        return DemandStream.from_dict(data)
     if kind == "elective_list":
         return ElectiveList.from_dict(data)
     raise ValueError(f"data: unknown stream kind {kind!r}")
@@ -370,7 +373,7 @@ class PlanningInput:
     Parameters
     ----------
     groups : sequence of PatientGroup
-    streams : sequence of ArrivalStream or ElectiveList
+    streams : sequence of DemandStream or ElectiveList
         Every group a stream names must be in ``groups``.
     beds : int or None
         Beds in the unit (>= 1); None for no limit (offered occupancy, nobody turned away).
@@ -392,7 +395,7 @@ class PlanningInput:
     """
 
     groups: tuple[PatientGroup, ...]
-    streams: tuple[ArrivalStream | ElectiveList, ...]
+    streams: tuple[DemandStream | ElectiveList, ...]
     beds: int | None
     days: int = 730
     warmup_days: int | None = None
@@ -417,8 +420,8 @@ class PlanningInput:
         if len(set(stream_names)) != len(stream_names):
             raise ValueError(f"streams: names must be unique, got {stream_names!r}")
         for stream in streams:
-            if not isinstance(stream, ArrivalStream | ElectiveList):
-                raise ValueError(f"streams: {stream!r} is not an ArrivalStream or ElectiveList")
+            if not isinstance(stream, DemandStream | ElectiveList):
+                raise ValueError(f"streams: {stream!r} is not a DemandStream or ElectiveList")
             unknown = [n for n, _ in stream.group_weights if n not in group_names]
             if unknown:
                 raise ValueError(
@@ -464,7 +467,7 @@ class PlanningInput:
         """Expected arrivals per day (averaged over the week)."""
         return float(sum(s.expected_by_weekday().mean() for s in self.streams))
 
-    def mean_stay(self, stream: ArrivalStream | ElectiveList) -> float:
+    def mean_stay(self, stream: DemandStream | ElectiveList) -> float:
         """Mean stay (days) of an arrival of ``stream``: its groups' means by its weights."""
         means = {g.name: g.stay.mean() for g in self.groups}
         return float(sum(w * means[n] for n, w in stream.group_weights))
@@ -575,7 +578,7 @@ def scale_arrivals(
 ) -> PlanningInput:
     """A copy of ``inp`` with the arrivals of some streams multiplied by ``factor``.
 
-    An :class:`ArrivalStream`'s weekday rates are multiplied (its negative binomial size is
+    A :class:`DemandStream`'s weekday rates are multiplied (its negative binomial size is
     kept, so the share of the variance beyond Poisson, m / r, grows with the rate); an
     :class:`ElectiveList`'s booked counts are multiplied (the cancellation probability kept).
 
@@ -597,13 +600,13 @@ def scale_arrivals(
     if not (math.isfinite(f) and f >= 0):
         raise ValueError(f"factor: must be finite and >= 0, got {factor!r}")
     matched = False
-    streams: list[ArrivalStream | ElectiveList] = []
+    streams: list[DemandStream | ElectiveList] = []
     for s in inp.streams:
         if (stream is None or s.name == stream) and (
             admission_type is None or s.admission_type == admission_type
         ):
             matched = True
-            if isinstance(s, ArrivalStream):
+            if isinstance(s, DemandStream):
                 s = dataclasses.replace(s, rate_by_weekday=tuple(v * f for v in s.rate_by_weekday))
             else:
                 s = dataclasses.replace(
@@ -715,14 +718,14 @@ def _clock_time(profile: tuple[float, ...] | None, u: FloatArray) -> FloatArray:
 
 
 def _daily_counts(
-    stream: ArrivalStream | ElectiveList,
+    stream: DemandStream | ElectiveList,
     inp: PlanningInput,
     replication: int,
     weekday: IntArray,
 ) -> tuple[IntArray, npt.NDArray[np.bool_] | None]:
     """Arrivals per day, and for an elective list which booked slots go ahead (K x days)."""
     n_days = weekday.size
-    if isinstance(stream, ArrivalStream):
+    if isinstance(stream, DemandStream):
         mean = np.asarray(stream.rate_by_weekday)[weekday]
         # Inverse-CDF counts: a higher rate gives at least as many arrivals from the same u.
         u = np.maximum(_generator(inp, replication, stream.name, _COUNT).random(n_days), 1e-300)
@@ -1148,7 +1151,12 @@ def _default_bed_range(inp: PlanningInput) -> range:
     return range(low, high + 1)
 
 
-def capacity_curve(inp: PlanningInput, beds: Iterable[int] | None = None) -> CapacityCurve:
+def capacity_curve(
+    inp: PlanningInput,
+    beds: Iterable[int] | None = None,
+    *,
+    progress: Callable[[int, int], None] | None = None,
+) -> CapacityCurve:
     """Simulate every bed count in ``beds`` on the same demand (common random numbers).
 
     Parameters
@@ -1158,6 +1166,9 @@ def capacity_curve(inp: PlanningInput, beds: Iterable[int] | None = None) -> Cap
     beds : iterable of int, optional
         Bed counts (>= 1). Default: from 60% of the offered load up to two beds past the
         Erlang loss formula's count for 0.1% turned away.
+    progress : callable, optional
+        Called as ``progress(done, total)`` after each replication's demand is drawn and each
+        bed count is measured (for a progress bar on long runs).
 
     Returns
     -------
@@ -1166,11 +1177,18 @@ def capacity_curve(inp: PlanningInput, beds: Iterable[int] | None = None) -> Cap
     counts = sorted({int(b) for b in (_default_bed_range(inp) if beds is None else beds)})
     if not counts or counts[0] < 1:
         raise ValueError(f"beds: needs bed counts >= 1, got {counts!r}")
-    demands = _prepared_demands(inp)
-    results = tuple(
-        _collect(inp, c, [_measure(inp, d, c) for d in demands]) for c in counts
-    )
-    return CapacityCurve(offered_load=inp.offered_load(), results=results)
+    total = inp.replications + len(counts)
+    demands = []
+    for r in range(inp.replications):
+        demands.append(_prepare(draw_demand(inp, r)))
+        if progress is not None:
+            progress(r + 1, total)
+    results = []
+    for i, c in enumerate(counts):
+        results.append(_collect(inp, c, [_measure(inp, d, c) for d in demands]))
+        if progress is not None:
+            progress(inp.replications + i + 1, total)
+    return CapacityCurve(offered_load=inp.offered_load(), results=tuple(results))
 
 
 @dataclass(frozen=True, eq=False)

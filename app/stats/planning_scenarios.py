@@ -22,7 +22,7 @@ from __future__ import annotations
 
 import dataclasses
 import math
-from collections.abc import Mapping, Sequence
+from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any, ClassVar
 
@@ -31,7 +31,7 @@ import pandas as pd
 
 from app.stats.planning import (
     WEEKDAYS,
-    ArrivalStream,
+    DemandStream,
     ElectiveList,
     PlanningInput,
     scale_arrivals,
@@ -166,7 +166,7 @@ class MoveGroupShare:
         """The input with the change made."""
         inp.group(self.from_group)
         inp.group(self.to_group)
-        streams: list[ArrivalStream | ElectiveList] = []
+        streams: list[DemandStream | ElectiveList] = []
         moved = False
         for s in inp.streams:
             weights = dict(s.group_weights)
@@ -203,7 +203,7 @@ class MoveElectives:
         Share of the ``from_weekday`` list moved, in [0, 1].
     stream : str, optional
         Only this stream; default every :class:`ElectiveList` and every
-        :class:`ArrivalStream` of admission type ``"elective"``.
+        :class:`DemandStream` of admission type ``"elective"``.
     """
 
     from_weekday: int
@@ -223,7 +223,7 @@ class MoveElectives:
             raise ValueError(f"to_weekday: must differ from from_weekday, got {self.to_weekday!r}")
         object.__setattr__(self, "share", _share(self.share, "share"))
 
-    def _moves(self, s: ArrivalStream | ElectiveList) -> bool:
+    def _moves(self, s: DemandStream | ElectiveList) -> bool:
         if self.stream is not None:
             return s.name == self.stream
         return isinstance(s, ElectiveList) or s.admission_type == "elective"
@@ -237,7 +237,7 @@ class MoveElectives:
 
     def apply(self, inp: PlanningInput) -> PlanningInput:
         """The input with the change made."""
-        streams: list[ArrivalStream | ElectiveList] = []
+        streams: list[DemandStream | ElectiveList] = []
         matched = False
         for s in inp.streams:
             if self._moves(s):
@@ -346,6 +346,7 @@ def compare(
     *,
     baseline_name: str = "current",
     level: float = 0.95,
+    progress: Callable[[int, int], None] | None = None,
 ) -> pd.DataFrame:
     """Simulate the current state and each scenario, and tabulate them side by side.
 
@@ -360,6 +361,9 @@ def compare(
         Names must be unique and differ from ``baseline_name``.
     baseline_name : str, default "current"
     level : float, default 0.95
+    progress : callable, optional
+        Called as ``progress(done, total)`` after each run (the current state, then each
+        scenario), for a progress bar on long runs.
 
     Returns
     -------
@@ -379,7 +383,11 @@ def compare(
     inputs = [baseline] + [s.apply(baseline) for s in scenarios]
     warmup = max(i.resolved_warmup_days() for i in inputs)
     inputs = [i.replace(warmup_days=warmup) for i in inputs]
-    results = [simulate(i) for i in inputs]
+    results = []
+    for done, i in enumerate(inputs, start=1):
+        results.append(simulate(i))
+        if progress is not None:
+            progress(done, len(inputs))
     descriptions = ["current state"] + [s.describe() for s in scenarios]
     reference = results[0]
     rows: list[dict[str, Any]] = []

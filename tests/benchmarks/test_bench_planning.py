@@ -5,7 +5,7 @@ from __future__ import annotations
 
 from app.stats.phasetype import Coxian
 from app.stats.planning import (
-    ArrivalStream,
+    DemandStream,
     ElectiveList,
     PatientGroup,
     PlanningInput,
@@ -23,7 +23,7 @@ MEDICAL = scale_stay(Coxian(lam=(0.9, 0.2), mu=(0.6, 0.3, 0.08)), 4.5 / (14.6 / 
 UNIT = PlanningInput(
     groups=(PatientGroup("medical", MEDICAL), PatientGroup("surgical", Coxian.erlang(2, 1.0))),
     streams=(
-        ArrivalStream("emergency", "emergency", (2.8, 2.6, 2.5, 2.5, 2.6, 2.3, 2.2),
+        DemandStream("emergency", "emergency", (2.8, 2.6, 2.5, 2.5, 2.6, 2.3, 2.2),
                       {"medical": 0.8, "surgical": 0.2}, dispersion=8.0,
                       hour_profile=(1.0,) * 8 + (2.0,) * 4 + (3.0,) * 8 + (2.0,) * 4),
         ElectiveList("theatre", (1.2, 1.0, 1.0, 1.0, 0.8, 0.0, 0.0),
@@ -61,3 +61,36 @@ def test_beds_needed_and_scenarios() -> None:
         frame = compare(UNIT, scenarios)
     assert answer.beds >= 1
     assert len(frame["scenario"].unique()) == 4
+
+
+def test_demo_unit_from_its_trained_model(demo_db: str, tmp_path) -> None:
+    """The demo's surgical ward (invented), its planning input built from a trained model:
+    the plain 2-year x 20 simulation and the whole `morrow plan` report with two scenarios."""
+    from app.forecast.planning_inputs import unit_planning_input
+    from app.forecast.planning_report import (
+        PlanSettings,
+        arrivals_scenario,
+        run_plan,
+        stay_scenario,
+    )
+    from app.store import db
+    from tests.conftest import UTC_ZONE
+    from tests.web.served import DEMO_NOW, trained_copy
+
+    url = trained_copy(demo_db, tmp_path, ("KV-SURG",))
+    with db.session_scope(url) as session:
+        demand = unit_planning_input(session, "KV-SURG", DEMO_NOW, UTC_ZONE)
+    out: dict[str, float] = {}
+    with timed("planning: demo KV-SURG from its model, 2 years x 20 replications", 30, out):
+        result = simulate(demand.baseline)
+    scenarios = [arrivals_scenario(demand, "emergency", 1.1), stay_scenario(demand, "longest", 0.8)]
+    with timed("planning: demo KV-SURG report (curve, beds needed, 2 scenarios), 2 years x 20",
+               30, out):
+        report = run_plan(demand, PlanSettings(), scenarios)
+    needed = report["beds_needed"]
+    print(f"BENCH   KV-SURG offered load {report['demand']['offered_load']:.2f} Erlangs, "
+          f"staffed {report['staffed_beds']}, beds needed for 5%: simulation "
+          f"{needed['simulation']} (confident {needed['simulation_confident']}), Erlang "
+          f"{needed['erlang']}; bed counts on the curve {len(report['curve'])}")
+    assert 0 < result.estimate("share_turned_away").mean < 1
+    assert needed["simulation"] >= 1

@@ -20,7 +20,7 @@ from scipy import stats
 from app.stats.erlang import beds_for_blocking, erlang_b
 from app.stats.phasetype import Coxian, PhaseType
 from app.stats.planning import (
-    ArrivalStream,
+    DemandStream,
     ElectiveList,
     PatientGroup,
     PlanningInput,
@@ -55,7 +55,7 @@ AFTERNOON = (0.0,) * 13 + (1.0,) * 6 + (0.0,) * 5
 
 
 def unit(beds: int | None = 16, **changes: object) -> PlanningInput:
-    emergency = ArrivalStream("emergency", "emergency", (2.8, 2.6, 2.5, 2.5, 2.6, 2.3, 2.2),
+    emergency = DemandStream("emergency", "emergency", (2.8, 2.6, 2.5, 2.5, 2.6, 2.3, 2.2),
                               {"medical": 0.8, "surgical": 0.2}, dispersion=8.0,
                               hour_profile=EVENING)
     theatre = ElectiveList("theatre", (1.2, 1.0, 1.0, 1.0, 0.8, 0.0, 0.0),
@@ -72,7 +72,7 @@ def flat_poisson(load: float, beds: int | None, stay: Coxian | PhaseType, **kw: 
     """Poisson arrivals at one rate every day and hour: the Erlang loss formula's setting."""
     rate = load / stay.mean()
     return PlanningInput(groups=(PatientGroup("all", stay),),
-                         streams=(ArrivalStream("arrivals", "emergency", (rate,) * 7,
+                         streams=(DemandStream("arrivals", "emergency", (rate,) * 7,
                                                 {"all": 1.0}),),
                          beds=beds, **kw)  # type: ignore[arg-type]
 
@@ -112,7 +112,7 @@ def test_daily_counts_follow_poisson_and_negative_binomial() -> None:
     groups = (PatientGroup("g", Coxian.exponential(1.0)),)
     rates = (2.0, 6.0, 3.0, 3.0, 3.0, 1.0, 0.0)
     for dispersion in (None, 4.0):
-        stream = ArrivalStream("s", "emergency", rates, {"g": 1.0}, dispersion=dispersion)
+        stream = DemandStream("s", "emergency", rates, {"g": 1.0}, dispersion=dispersion)
         inp = PlanningInput(groups=groups, streams=(stream,), beds=None, days=14_000,
                             warmup_days=0, replications=2, seed=3)
         counts = draw_demand(inp, 0).counts_by_day()
@@ -254,7 +254,7 @@ def test_turned_away_rises_steeply_between_85_and_92_percent_occupancy() -> None
     rate = 100 * 0.85 / MEDICAL.mean()
     pattern = np.array([1.1, 1.0, 1.0, 1.0, 1.0, 0.95, 0.95]) * rate
     pool = PlanningInput(groups=groups,
-                         streams=(ArrivalStream("emergency", "emergency", tuple(pattern),
+                         streams=(DemandStream("emergency", "emergency", tuple(pattern),
                                                 {"acute": 1.0}, dispersion=20.0),),
                          beds=100, seed=5)
     shares, days_short = {}, {}
@@ -453,24 +453,24 @@ def test_same_seed_same_result_other_seed_other_result() -> None:
 
 def test_bad_input_is_refused_with_the_argument_named() -> None:
     groups = (PatientGroup("g", Coxian.exponential(1.0)),)
-    stream = ArrivalStream("s", "emergency", (1.0,) * 7, {"g": 1.0})
+    stream = DemandStream("s", "emergency", (1.0,) * 7, {"g": 1.0})
     with pytest.raises(ValueError, match="rate_by_weekday: needs 7"):
-        ArrivalStream("s", "emergency", (1.0,) * 6, {"g": 1.0})
+        DemandStream("s", "emergency", (1.0,) * 6, {"g": 1.0})
     with pytest.raises(ValueError, match="dispersion"):
-        ArrivalStream("s", "emergency", (1.0,) * 7, {"g": 1.0}, dispersion=0.0)
+        DemandStream("s", "emergency", (1.0,) * 7, {"g": 1.0}, dispersion=0.0)
     with pytest.raises(ValueError, match="hour_profile"):
-        ArrivalStream("s", "emergency", (1.0,) * 7, {"g": 1.0}, hour_profile=(1.0,) * 23)
+        DemandStream("s", "emergency", (1.0,) * 7, {"g": 1.0}, hour_profile=(1.0,) * 23)
     with pytest.raises(ValueError, match="cancellation"):
         ElectiveList("e", (1.0,) * 7, {"g": 1.0}, cancellation=1.5)
     with pytest.raises(ValueError, match="unknown groups"):
-        PlanningInput(groups=groups, streams=(ArrivalStream("s", "emergency", (1.0,) * 7,
+        PlanningInput(groups=groups, streams=(DemandStream("s", "emergency", (1.0,) * 7,
                                                             {"h": 1.0}),), beds=3)
     with pytest.raises(ValueError, match="beds"):
         PlanningInput(groups=groups, streams=(stream,), beds=0)
     with pytest.raises(ValueError, match="replications"):
         PlanningInput(groups=groups, streams=(stream,), beds=3, replications=1)
     with pytest.raises(ValueError, match="expected number of arrivals is 0"):
-        PlanningInput(groups=groups, streams=(ArrivalStream("s", "emergency", (0.0,) * 7,
+        PlanningInput(groups=groups, streams=(DemandStream("s", "emergency", (0.0,) * 7,
                                                             {"g": 1.0}),), beds=3)
     inp = PlanningInput(groups=groups, streams=(stream,), beds=3)
     with pytest.raises(ValueError, match="no patient group 'x'"):
