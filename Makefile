@@ -33,11 +33,13 @@ demo: install
 	@echo "The page replays the demo's last census morning (MORROW_NOW); unset it for the real clock."
 	MORROW_NOW=$$($(BIN)/morrow --db $(DB) demo now) $(BIN)/morrow --db $(DB) serve --host $(HOST) --port $(PORT)
 
+# .ci/postgres starts a throwaway PostgreSQL server for the tests that run on both databases
+# (when Debian's postgresql package is installed; otherwise those tests skip, or fail under CI).
 test: install-test
-	$(BIN)/python -m pytest -q tests --ignore=tests/benchmarks
+	bash .ci/postgres with $(BIN)/python -m pytest -q tests --ignore=tests/benchmarks
 
 bench: install-test
-	$(BIN)/python -m pytest -q tests/benchmarks -s -p no:randomly
+	bash .ci/postgres with $(BIN)/python -m pytest -q tests/benchmarks -s -p no:randomly
 
 lint: install-test
 	$(BIN)/ruff check app tests migrations

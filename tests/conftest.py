@@ -11,6 +11,7 @@ import pytest
 
 from app.config import PROJECT_ROOT
 from app.store import db
+from tests.databases import BACKENDS, PostgresDatabases, postgres_admin_url
 
 UTC_ZONE = ZoneInfo("UTC")
 DEMO_DIR = PROJECT_ROOT / "demo_data"
@@ -34,12 +35,50 @@ def _settle(url: str) -> None:
     engine.dispose()
 
 
+def pytest_generate_tests(metafunc: pytest.Metafunc) -> None:
+    """Tests of modules marked ``both_databases`` run on SQLite and on PostgreSQL."""
+    if ("database" in metafunc.fixturenames
+            and metafunc.definition.get_closest_marker("both_databases") is not None):
+        metafunc.parametrize("database", BACKENDS, indirect=True)
+
+
 @pytest.fixture
-def db_url(migrated_template: Path, tmp_path: Path) -> Iterator[str]:
-    """A fresh, migrated, empty SQLite database for one test."""
+def database(request: pytest.FixtureRequest) -> str:
+    """Which database ``db_url`` gives: SQLite unless the test is marked ``both_databases``."""
+    return str(getattr(request, "param", "sqlite"))
+
+
+@pytest.fixture(scope="session")
+def postgres_databases() -> Iterator[PostgresDatabases]:
+    """The PostgreSQL test server (tests/databases.py), with a template migrated to head."""
+    server = PostgresDatabases(postgres_admin_url())
+    server.migrate_template()
+    yield server
+    server.close()
+
+
+@pytest.fixture
+def db_url(database: str, request: pytest.FixtureRequest, tmp_path: Path) -> Iterator[str]:
+    """A fresh, migrated, empty database for one test (SQLite, or PostgreSQL when marked)."""
+    if database == "postgresql":
+        with request.getfixturevalue("postgres_databases").fresh() as url:
+            yield url
+        return
     path = tmp_path / "morrow.db"
-    shutil.copy(migrated_template, path)
+    shutil.copy(request.getfixturevalue("migrated_template"), path)
     url = f"sqlite:///{path}"
+    yield url
+    db.get_engine(url).dispose()
+
+
+@pytest.fixture
+def empty_db_url(database: str, request: pytest.FixtureRequest, tmp_path: Path) -> Iterator[str]:
+    """A new database with no tables at all, for migration tests."""
+    if database == "postgresql":
+        with request.getfixturevalue("postgres_databases").fresh(migrated=False) as url:
+            yield url
+        return
+    url = f"sqlite:///{tmp_path / 'empty.db'}"
     yield url
     db.get_engine(url).dispose()
 

@@ -13,7 +13,7 @@ from typing import Any
 
 from sqlalchemy.orm import Session
 
-from app.cli import users
+from app.cli import plan, users
 from app.config import current_time, get_settings
 from app.ingest import KINDS, ImportRefused, import_file
 from app.store import db, repo
@@ -214,17 +214,48 @@ def cmd_demo_now(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
+# uvicorn replaces a worker that leaves its health check unanswered this long (its default,
+# 5 s, kills workers that are only slow: busy computing forecasts on a loaded machine, the
+# answer waits for the interpreter lock, and the requests in flight on them fail).
+WORKER_HEALTHCHECK_S = 60
+
+
 def cmd_serve(args: argparse.Namespace) -> int:
     import uvicorn
 
-    from app.web.app import create_app
-
+    if args.workers < 1:
+        raise BadInput(f"--workers must be at least 1, got {args.workers}")
     if args.host not in ("127.0.0.1", "localhost", "::1"):
         print(f"warning: listening on {args.host}; put a TLS proxy in front before others use it",
               file=sys.stderr)
-    print(f"Morrow serving on http://{args.host}:{args.port}/", flush=True)
-    uvicorn.run(create_app(args.db), host=args.host, port=args.port, log_level="warning")
+    workers = f" with {args.workers} worker processes" if args.workers > 1 else ""
+    print(f"Morrow serving on http://{args.host}:{args.port}/{workers}", flush=True)
+    if args.workers == 1:
+        from app.web.app import create_app
+
+        uvicorn.run(create_app(args.db), host=args.host, port=args.port, log_level="warning")
+        return EXIT_OK
+    _prepare_workers(args.db)
+    uvicorn.run("app.web.app:create_app", factory=True, workers=args.workers, host=args.host,
+                port=args.port, log_level="warning",
+                timeout_worker_healthcheck=WORKER_HEALTHCHECK_S)
     return EXIT_OK
+
+
+def _prepare_workers(url: str) -> None:
+    """Set up once, in the parent, what every worker process would otherwise race to do.
+
+    Each worker is a new interpreter that builds the app from its import string and reads
+    its settings from the environment, so the database URL travels there. ``main`` has
+    already migrated the database; the CSRF signing key is made here, so workers starting
+    together only read it. No connection of the parent is left open for them.
+    """
+    from app.web.security import load_csrf_key
+
+    os.environ["MORROW_DATABASE_URL"] = url
+    get_settings.cache_clear()
+    load_csrf_key(url)
+    db.get_engine(url).dispose()
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -283,8 +314,12 @@ def build_parser() -> argparse.ArgumentParser:
     p = sub.add_parser("serve", help="serve the web page and API")
     p.add_argument("--host", default="127.0.0.1")
     p.add_argument("--port", type=int, default=8000)
+    p.add_argument("--workers", type=int, default=1,
+                   help="server processes (several need a database that every process "
+                        "reaches, such as PostgreSQL; default 1)")
     p.set_defaults(func=cmd_serve)
     users.register(sub)
+    plan.register(sub)
     return parser
 
 

@@ -141,7 +141,8 @@ def cmd_backup(args: argparse.Namespace) -> int:
     source = _sqlite_path(args.db)
     if source is None:
         return _error("backup works on an SQLite database; for another database use its own "
-                      "tools (for PostgreSQL, pg_dump)")
+                      "tools (for PostgreSQL: pg_dump --format=custom --file=FILE DATABASE, "
+                      "safe while the server runs)")
     target = Path(args.file)
     if target.exists() and not args.force:
         return _error(f"{target} exists; give --force to overwrite it")
@@ -176,7 +177,8 @@ def cmd_restore(args: argparse.Namespace) -> int:
     target = _sqlite_path(args.db)
     if target is None:
         return _error("restore works on an SQLite database; for another database use its own "
-                      "tools (for PostgreSQL, pg_restore)")
+                      "tools (for PostgreSQL: stop the server, then pg_restore --clean "
+                      "--if-exists --dbname=DATABASE FILE)")
     source = Path(args.file)
     if not source.is_file():
         return _error(f"{source}: no such file")

@@ -28,7 +28,6 @@ from typing import Any
 
 import numpy as np
 import numpy.typing as npt
-import statsmodels.api as sm
 from scipy import stats
 
 __all__ = ["DailyRateModel", "fit_daily_rate", "hourly_profile"]
@@ -123,6 +122,10 @@ def fit_daily_rate(days: Sequence[date], counts: npt.ArrayLike) -> DailyRateMode
     if y.sum() == 0:
         coefficients = np.r_[-30.0, np.zeros(x.shape[1] - 1)]
         return DailyRateModel(tuple(coefficients), seasonal, None, len(days), 1.0, 0.0)
+    # Imported here: statsmodels takes seconds to import and only fitting needs it, so
+    # each web server worker starts without it.
+    import statsmodels.api as sm
+
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")  # perfect-separation style warnings on sparse weekdays
         poisson = sm.GLM(y, x, family=sm.families.Poisson()).fit()

@@ -1,4 +1,9 @@
-"""Engine, sessions and migrations. SQLite gets WAL, a busy timeout and foreign keys."""
+"""Engine, sessions and migrations. SQLite gets WAL, a busy timeout and foreign keys.
+
+PostgreSQL goes through psycopg 3 (``postgresql+psycopg://``; a plain ``postgresql://``
+URL is taken to mean that driver too). Everything else is the same SQL on both: a
+statement only one of them understands belongs in a branch on ``dialect.name``.
+"""
 
 from __future__ import annotations
 
@@ -8,6 +13,7 @@ from functools import lru_cache
 from typing import Any
 
 from sqlalchemy import Engine, create_engine, event
+from sqlalchemy.engine import make_url
 from sqlalchemy.orm import Session, sessionmaker
 
 from app.config import PROJECT_ROOT
@@ -30,9 +36,12 @@ def get_engine(url: str) -> Engine:
     if url.startswith("sqlite"):
         engine = create_engine(url, connect_args={"timeout": BUSY_TIMEOUT_MS / 1000})
         event.listen(engine, "connect", _sqlite_pragmas)
-    else:
-        engine = create_engine(url, pool_pre_ping=True)
-    return engine
+        return engine
+    parsed = make_url(url)
+    if parsed.drivername == "postgresql":
+        # SQLAlchemy's default PostgreSQL driver is psycopg2; Morrow installs psycopg 3.
+        parsed = parsed.set(drivername="postgresql+psycopg")
+    return create_engine(parsed, pool_pre_ping=True)
 
 
 @lru_cache(maxsize=16)

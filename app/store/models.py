@@ -316,3 +316,31 @@ class BacktestRun(Base):
     date_to: Mapped[date] = mapped_column(Date)
     days: Mapped[int] = mapped_column(Integer)
     result: Mapped[str] = mapped_column(Text)
+
+
+class TrainingRun(Base):
+    """A training run asked for from the model page, done by a separate process.
+
+    ``active_unit`` holds the unit while the run is queued or running and is cleared when it
+    ends: being unique, it lets one run at a time per unit in, on every database.
+    """
+
+    __tablename__ = "training_run"
+    __table_args__ = (Index("ix_training_run_unit_requested", "unit", "requested_at"),)
+
+    id: Mapped[int] = mapped_column(primary_key=True)
+    unit: Mapped[str] = mapped_column(ForeignKey("unit.code"))
+    active_unit: Mapped[str | None] = mapped_column(String(64), unique=True)
+    requested_by: Mapped[str] = mapped_column(String(100))
+    requested_at: Mapped[datetime] = mapped_column(default=utcnow)
+    # Train on what was known at this instant.
+    until: Mapped[datetime]
+    # "queued", "running", "done" or "failed".
+    status: Mapped[str] = mapped_column(String(10), default="queued")
+    stage: Mapped[str] = mapped_column(String(100), default="")
+    started_at: Mapped[datetime | None]
+    # The worker process writes this every few seconds; a run whose beat stops has died.
+    heartbeat_at: Mapped[datetime | None]
+    finished_at: Mapped[datetime | None]
+    model_id: Mapped[str | None] = mapped_column(String(36))
+    message: Mapped[str | None] = mapped_column(String(500))

@@ -1,10 +1,13 @@
-"""Re-running a whole transaction when SQLite reports the database busy.
+"""Re-running a whole transaction when the database gave up on it so that others could go on.
 
 SQLite lets one writer in at a time. A writer waits up to the busy timeout
 (``db.BUSY_TIMEOUT_MS``) for the lock; past it, or when waiting could deadlock, it fails
-with "database is locked". The transaction has then been rolled back entirely, so running
-the same unit of work again from the start is safe: this is the one retry we make.
-Imports are idempotent too, so a retried import can never store a row twice.
+with "database is locked". PostgreSQL lets writers run side by side and aborts one of two
+transactions that wait on each other (deadlock_detected, SQLSTATE 40P01) or that cannot be
+put in a serial order (serialization_failure, 40001). Either way the transaction has been
+rolled back entirely, so running the same unit of work again from the start is safe: this
+is the one retry we make. Imports are idempotent too, so a retried import can never store
+a row twice.
 """
 
 from __future__ import annotations
@@ -22,12 +25,17 @@ from app.store import db
 T = TypeVar("T")
 
 BUSY_MESSAGES = ("database is locked", "database is busy", "database table is locked")
+# PostgreSQL manual, Appendix A "PostgreSQL Error Codes", class 40 "Transaction Rollback".
+RETRY_SQLSTATES = frozenset({"40001", "40P01"})
 
 
 def is_busy(exc: BaseException) -> bool:
-    """Whether ``exc`` is SQLite's "busy/locked" answer (and not a real failure)."""
-    return isinstance(exc, OperationalError) and any(
-        text in str(exc.orig).lower() for text in BUSY_MESSAGES)
+    """Whether ``exc`` is the database's "busy, try again" answer (and not a real failure)."""
+    if not isinstance(exc, OperationalError):
+        return False
+    if getattr(exc.orig, "sqlstate", None) in RETRY_SQLSTATES:
+        return True
+    return any(text in str(exc.orig).lower() for text in BUSY_MESSAGES)
 
 
 def run_transaction(url: str, work: Callable[[Session], T], *, attempts: int = 5,

@@ -12,7 +12,17 @@ from fastapi.staticfiles import StaticFiles
 from app import __version__
 from app.config import PROJECT_ROOT, get_settings
 from app.store import db, repo
-from app.web import api, forecasts, model_page, pages, routes_audit, routes_auth, security
+from app.web import (
+    api,
+    forecasts,
+    model_page,
+    pages,
+    planning_page,
+    routes_audit,
+    routes_auth,
+    routes_training,
+    security,
+)
 from app.web.deps import SessionDep
 from app.web.security import ReadActor
 from app.web.templating import templates
@@ -34,6 +44,8 @@ def create_app(database_url: str | None = None) -> FastAPI:
     app.include_router(pages.router)
     app.include_router(api.router)
     app.include_router(model_page.router)
+    app.include_router(planning_page.router)
+    app.include_router(routes_training.router)
 
     @app.get("/vendor/plotly.min.js", include_in_schema=False)
     def plotly_js() -> FileResponse:

@@ -59,8 +59,8 @@ from starlette.datastructures import Headers, MutableHeaders
 from starlette.types import ASGIApp, Message, Receive, Scope, Send
 
 from app.config import get_settings
-from app.store import db
 from app.store import users as accounts
+from app.store.retry import run_transaction
 from app.store.users import PERMISSIONS, ROLE_LABELS, ROLE_PERMISSIONS, ROLES
 from app.web.deps import SessionDep
 
@@ -484,10 +484,11 @@ async def _on_permission_denied(request: Request, exc: Exception) -> Response:
 
 
 def load_csrf_key(url: str) -> bytes:
+    """The database's CSRF key, shared by every worker; made by the first one to ask."""
     for _ in range(3):
         try:
-            with db.session_scope(url) as session:
-                return accounts.signing_key(session, "csrf")
+            # SQLite may answer "busy" while another process writes the key: run again.
+            return run_transaction(url, lambda session: accounts.signing_key(session, "csrf"))
         except IntegrityError:
             continue  # another process made the key at the same moment: read theirs
     raise RuntimeError("could not read or make the CSRF signing key")

@@ -32,6 +32,8 @@ from tests.ingest.csvtext import (
     csv_bytes,
 )
 
+pytestmark = pytest.mark.both_databases  # every importer on SQLite and PostgreSQL
+
 
 def run(url: str, kind: str, data: bytes, name: str = "file.csv"):
     with db.session_scope(url) as session:

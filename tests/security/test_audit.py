@@ -11,6 +11,7 @@ import io
 import json
 from typing import Any
 
+import pytest
 from sqlalchemy import select
 
 from app.ingest import import_file
@@ -21,6 +22,8 @@ from tests.conftest import UTC_ZONE
 from tests.ingest.csvtext import BOOKING_HEADER, CENSUS_HEADER, OBS_HEADER, STAY_HEADER, csv_bytes
 from tests.security.conftest import PASSWORD, SecuredApp
 from tests.security.fixtures import csrf, signed_in_client
+
+pytestmark = pytest.mark.both_databases  # the audit trail on SQLite and PostgreSQL
 
 ACTOR = "bm.test"
 

@@ -1,7 +1,8 @@
 """Writers at once: 8 entering scores and 2 importing files; every write stored exactly once.
 
 The scores are written as a score form will write them: one transaction holding the new
-observation and its audit event. Invented unit and stays.
+observation and its audit event. Invented unit and stays. Runs on SQLite and PostgreSQL;
+tests/security/test_workers.py runs the same scenario through `morrow serve --workers 4`.
 """
 
 from __future__ import annotations
@@ -22,6 +23,9 @@ from app.store.audit import record_audit
 from app.store.models import AuditEvent, ImportBatch, Observation
 from app.store.retry import is_busy, run_transaction
 from tests.conftest import UTC_ZONE
+from tests.databases import is_postgres
+
+pytestmark = pytest.mark.both_databases
 
 WRITERS, SCORES_EACH = 8, 25
 IMPORTERS, FILES_EACH, ROWS_PER_FILE = 2, 3, 400
@@ -112,6 +116,8 @@ def test_eight_score_writers_and_two_importers(db_url: str) -> None:
                                          for i in range(IMPORTERS) for f in range(FILES_EACH))
         assert session.execute(select(func.count()).select_from(ImportBatch)
                                .where(ImportBatch.kind == "form")).scalar() == WRITERS * SCORES_EACH
+    if is_postgres(db_url):
+        return
     path = db_url.removeprefix("sqlite:///")
     with sqlite3.connect(path) as conn:
         assert conn.execute("PRAGMA journal_mode").fetchone()[0] == "wal"
@@ -159,3 +165,48 @@ def test_other_errors_are_not_retried(db_url: str) -> None:
     with pytest.raises(OperationalError, match="database is locked"):
         run_transaction(db_url, always_busy, attempts=3, pause_s=0.001)
     assert len(runs) == 4
+
+
+def test_postgres_deadlock_victim_is_rerun(postgres_databases: Any) -> None:
+    """Two transactions that lock two rows in opposite orders: PostgreSQL aborts one
+    (deadlock_detected, 40P01, after its deadlock_timeout) and run_transaction reruns it."""
+    from sqlalchemy import update
+
+    from app.store.models import Unit
+
+    with postgres_databases.fresh() as url:
+        with db.session_scope(url) as session:
+            import_file(session, "units", b"unit,beds\nU-A,5\nU-B,5\n", "units.csv",
+                        tz=UTC_ZONE)
+        both_hold_one = threading.Barrier(2)
+        attempts = {"ab": 0, "ba": 0}
+        errors: list[BaseException] = []
+
+        def lock_in_order(first: str, second: str, tag: str) -> None:
+            def work(session: Session) -> None:
+                attempts[tag] += 1
+                session.execute(update(Unit).where(Unit.code == first).values(census_time="01:00"))
+                if attempts[tag] == 1:  # only the first run meets the other in the middle
+                    both_hold_one.wait(timeout=30)
+                session.execute(update(Unit).where(Unit.code == second).values(census_time="02:00"))
+
+            try:
+                run_transaction(url, work, pause_s=0.01)
+            except BaseException as exc:  # collected: a thread's failure must fail the test
+                errors.append(exc)
+
+        threads = [threading.Thread(target=lock_in_order, args=("U-A", "U-B", "ab")),
+                   threading.Thread(target=lock_in_order, args=("U-B", "U-A", "ba"))]
+        for t in threads:
+            t.start()
+        for t in threads:
+            t.join(timeout=60)
+        assert not any(t.is_alive() for t in threads)
+        assert not errors, errors
+        # One ran once, the deadlock's victim twice: three runs, and both committed. The
+        # victim's rerun committed last, so its writes are the ones stored.
+        assert sorted(attempts.values()) == [1, 2]
+        first, second = ("U-A", "U-B") if attempts["ab"] == 2 else ("U-B", "U-A")
+        with db.session_scope(url) as session:
+            stored = dict(session.execute(select(Unit.code, Unit.census_time)).all())
+        assert stored == {first: "01:00", second: "02:00"}
