@@ -18,7 +18,8 @@ from dataclasses import dataclass
 from datetime import datetime, timedelta
 from functools import lru_cache
 
-from sqlalchemy import delete, select
+from sqlalchemy import and_, case, delete, literal, null, or_, select, update
+from sqlalchemy.exc import IntegrityError
 from sqlalchemy.orm import Session
 
 from app.store.audit import record_audit
@@ -237,20 +238,40 @@ def attempt_signin(session: Session, username: str, password: str, *, now: datet
     stored = user.password_hash if user is not None and usable else _dummy_hash()
     ok = verify_password(password[:MAX_PASSWORD_LENGTH], stored)
     if ok and usable:
-        if failure is not None:
-            session.delete(failure)
+        session.execute(delete(SigninFailure).where(SigninFailure.username == name))
         return SigninOutcome(user)
-    if failure is None:
-        failure = SigninFailure(username=name, failures=0, first_failed_at=now)
-        session.add(failure)
-    elif (failure.locked_until is not None and failure.locked_until <= now) or (
-            failure.first_failed_at + window <= now):
-        failure.failures, failure.first_failed_at, failure.locked_until = 0, now, None
-    failure.failures += 1
-    if failure.failures >= max_failures:
-        failure.locked_until = now + window
-    session.flush()
-    return SigninOutcome(None, failure.locked_until)
+    return SigninOutcome(None, _count_failure(session, name, seen=failure is not None, now=now,
+                                              max_failures=max_failures, window=window))
+
+
+def _count_failure(session: Session, name: str, *, seen: bool, now: datetime,
+                   max_failures: int, window: timedelta) -> datetime | None:
+    """Count one failed sign-in for ``name`` in the database itself, so wrong guesses sent at
+    the same moment are all counted (a read-then-write in Python would lose some, and two
+    first failures for a new name would collide on its key). Returns the lock's end, if any.
+    ``seen``: the name's row was read just before (then it is not created again)."""
+    if not seen:
+        try:
+            with session.begin_nested():
+                session.add(SigninFailure(username=name, failures=0, first_failed_at=now))
+        except IntegrityError:
+            pass  # another request counted this name first: count on its row
+    when = SigninFailure.locked_until.type  # the UTC column type, for the bound instants
+    stale = or_(and_(SigninFailure.locked_until.is_not(None),
+                     SigninFailure.locked_until <= literal(now, when)),
+                SigninFailure.first_failed_at <= literal(now - window, when))
+    count = case((stale, 1), else_=SigninFailure.failures + 1)
+    session.execute(
+        update(SigninFailure).where(SigninFailure.username == name).values(
+            failures=count,
+            first_failed_at=case((stale, literal(now, when)),
+                                 else_=SigninFailure.first_failed_at),
+            locked_until=case((count >= max_failures, literal(now + window, when)),
+                              (stale, null()), else_=SigninFailure.locked_until))
+        .execution_options(synchronize_session=False))
+    return session.scalar(select(SigninFailure.locked_until)
+                          .where(SigninFailure.username == name)
+                          .execution_options(populate_existing=True))
 
 
 def _sha256(raw: str) -> str:

@@ -210,3 +210,38 @@ def test_postgres_deadlock_victim_is_rerun(postgres_databases: Any) -> None:
         with db.session_scope(url) as session:
             stored = dict(session.execute(select(Unit.code, Unit.census_time)).all())
         assert stored == {first: "01:00", second: "02:00"}
+
+
+def test_wrong_guesses_at_once_are_all_counted(db_url: str) -> None:
+    """Six wrong passwords for a new name at the same moment: each is counted, none fails.
+
+    Checking then writing the counter in Python would lose counts (and two first failures
+    would collide on the name's key); the count is kept by one UPDATE in the database."""
+    from app.store import users as accounts
+    from app.store.models import SigninFailure
+
+    guesses = 6
+    start = threading.Barrier(guesses)
+    problems: list[str] = []
+
+    def guess(k: int) -> None:
+        start.wait()
+        try:
+            def attempt(session: Session) -> None:
+                outcome = accounts.attempt_signin(
+                    session, "nobody.here", f"wrong guess {k}", now=T0, max_failures=100,
+                    window=timedelta(minutes=15))
+                assert outcome.user is None
+            run_transaction(db_url, attempt)
+        except Exception as exc:  # collected: the test reports every one
+            problems.append(f"{type(exc).__name__}: {exc}")
+
+    threads = [threading.Thread(target=guess, args=(k,)) for k in range(guesses)]
+    for t in threads:
+        t.start()
+    for t in threads:
+        t.join(timeout=120)
+    assert problems == []
+    with db.session_scope(db_url) as session:
+        row = session.get(SigninFailure, "nobody.here")
+        assert row is not None and row.failures == guesses
