@@ -281,10 +281,12 @@ def forecast_on(backdrop: Backdrop, state: UnitState, record: ModelRecord
     return payload, inputs
 
 
-def store_forecast(session: Session, payload: dict[str, Any], origin: str) -> int:
-    """Keep a forecast as shown, to compare with the census that follows."""
+def store_forecast(session: Session, payload: dict[str, Any], origin: str,
+                   hour: datetime | None = None) -> int:
+    """Keep a forecast as shown, to compare with the census that follows. With ``hour``, at
+    most one per unit, model, origin and hour is stored (a second raises IntegrityError)."""
     row = StoredForecast(unit=payload["unit"], as_of=datetime.fromisoformat(payload["as_of"]),
-                         model_id=payload["model"]["id"], origin=origin,
+                         model_id=payload["model"]["id"], origin=origin, hour=hour,
                          payload=json.dumps(payload, allow_nan=False))
     session.add(row)
     session.flush()

@@ -151,7 +151,7 @@ class CensusRow(Base):
 
 
 class Observation(Base):
-    """A timed score or flag. Append-only: a correction is a new row with a later ``recorded_at``."""
+    """A timed score or flag. Append-only: a correction is a new row, later ``recorded_at``."""
 
     __tablename__ = "observation"
     __table_args__ = (
@@ -188,7 +188,7 @@ class Booking(Base):
 
 
 class AuditEvent(Base):
-    """Who changed which record, when, from which batch or form, with the values before and after."""
+    """Who changed which record, when, from which batch or form, values before and after."""
 
     __tablename__ = "audit_event"
     __table_args__ = (Index("ix_audit_entity", "entity", "entity_id"),)
@@ -222,7 +222,11 @@ class StoredForecast(Base):
     """A forecast as it was shown, kept to compare with the census that followed."""
 
     __tablename__ = "stored_forecast"
-    __table_args__ = (Index("ix_stored_forecast_unit_as_of", "unit", "as_of"),)
+    __table_args__ = (Index("ix_stored_forecast_unit_as_of", "unit", "as_of"),
+                      # One page forecast per clock hour, unit and model, however many
+                      # server workers compute one (NULL for other origins: not limited).
+                      Index("uq_stored_forecast_hour", "unit", "model_id", "origin", "hour",
+                            unique=True))
 
     id: Mapped[int] = mapped_column(primary_key=True)
     unit: Mapped[str] = mapped_column(ForeignKey("unit.code"))
@@ -230,6 +234,7 @@ class StoredForecast(Base):
     model_id: Mapped[str] = mapped_column(ForeignKey("trained_model.id"))
     created_at: Mapped[datetime] = mapped_column(default=utcnow)
     origin: Mapped[str] = mapped_column(String(20))
+    hour: Mapped[datetime | None]
     payload: Mapped[str] = mapped_column(Text)
 
 

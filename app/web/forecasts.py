@@ -18,7 +18,7 @@ from dataclasses import dataclass, field
 from datetime import UTC, datetime, timedelta
 from typing import Any
 
-from sqlalchemy import select
+from sqlalchemy.exc import IntegrityError
 from sqlalchemy.orm import Session
 
 from app.config import current_time, get_settings
@@ -34,10 +34,8 @@ from app.forecast.service import (
 )
 from app.state import UnitState, load_state, with_current_observations
 from app.store import repo
-from app.store.models import StoredForecast
 
 CACHE_SIZE = 64
-STORE_EVERY = timedelta(hours=1)
 
 
 @dataclass(frozen=True)
@@ -110,8 +108,7 @@ def current(session: Session, unit: str, *, as_of: datetime | None = None,
         shown = Shown(forecast, state, None, expected_admissions(inputs))
         _remember(key, shown)
     if as_of is None:
-        _store_now_and_then(session, shown.forecast, (where, unit, record.id, markers.latest),
-                            moment)
+        _store_now_and_then(session, shown.forecast, (where, unit, record.id), moment)
     return shown
 
 
@@ -142,14 +139,16 @@ def _remember(key: tuple[Any, ...], shown: Shown) -> None:
 
 def _store_now_and_then(session: Session, forecast: dict[str, Any] | None,
                         key: tuple[Any, ...], moment: datetime) -> None:
+    """Store the first forecast of each clock hour per unit and model. Several workers may
+    try at once: the database keeps one (a unique index) and the others step back."""
     if forecast is None:
         return
-    last = _stored.get(key)
-    if last is None:
-        last = session.scalar(select(StoredForecast.as_of).where(
-            StoredForecast.unit == key[1], StoredForecast.model_id == key[2])
-            .order_by(StoredForecast.as_of.desc()).limit(1))
-    if last is not None and moment - last < STORE_EVERY:
+    hour = moment.replace(minute=0, second=0, microsecond=0)
+    if _stored.get(key) == hour:
         return
-    store_forecast(session, forecast, origin="page")
-    _stored[key] = moment
+    try:
+        with session.begin_nested():
+            store_forecast(session, forecast, origin="page", hour=hour)
+    except IntegrityError:
+        pass  # this hour's forecast is stored already
+    _stored[key] = hour

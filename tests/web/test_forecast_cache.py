@@ -88,3 +88,29 @@ def test_forecast_moment() -> None:
     assert forecast_moment(now, now - timedelta(seconds=10)) == minute + timedelta(minutes=1)
     # A replayed clock far behind the real writes keeps its own minute.
     assert forecast_moment(now, now + timedelta(days=2)) == minute
+
+
+def test_one_stored_page_forecast_per_hour_across_workers(trained: str,
+                                                          replayed: None) -> None:
+    from sqlalchemy import func, select
+
+    from app.store.models import StoredForecast
+
+    def stored() -> int:
+        with db.session_scope(trained) as session:
+            return int(session.scalar(select(func.count()).select_from(StoredForecast).where(
+                StoredForecast.unit == UNIT, StoredForecast.origin == "page")) or 0)
+
+    with db.session_scope(trained) as session:
+        shown = current(session, UNIT)
+    assert stored() == 1
+    # Another worker has its own memory: it tries to store the same hour's forecast.
+    forecasts._stored.clear()
+    with db.session_scope(trained) as session:
+        forecasts._store_now_and_then(session, shown.forecast, ("w2", UNIT, "m"),
+                                      DEMO_NOW + timedelta(minutes=20))
+    assert stored() == 1
+    with db.session_scope(trained) as session:
+        forecasts._store_now_and_then(session, shown.forecast, ("w2", UNIT, "m"),
+                                      DEMO_NOW + timedelta(minutes=70))
+    assert stored() == 2  # the next hour's is kept
