@@ -150,7 +150,8 @@ def cmd_backtest(args: argparse.Namespace) -> int:
         _known_unit(session, args.unit)
         result = run_backtest(session, args.unit, start, end, get_settings().tz, days=args.days,
                               progress=None if args.json else text_progress)
-    plot = save_calibration_plot(result, Path(args.plot or f"backtest-{args.unit}-{start}-{end}.png"))
+    default_plot = f"backtest-{args.unit}-{start}-{end}.png"
+    plot = save_calibration_plot(result, Path(args.plot or default_plot))
     result["plot"] = str(plot)
     with db.session_scope(args.db) as session:
         store_backtest(session, result)

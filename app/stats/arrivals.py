@@ -114,7 +114,8 @@ def fit_daily_rate(days: Sequence[date], counts: npt.ArrayLike) -> DailyRateMode
     if y.shape != (len(days),):
         raise ValueError(f"counts: expected shape ({len(days)},), got {y.shape}")
     if len(days) < 14:
-        raise ValueError(f"days: at least 14 days are needed to fit weekday effects, got {len(days)}")
+        raise ValueError("days: at least 14 days are needed to fit weekday effects, "
+                         f"got {len(days)}")
     if np.any(y < 0) or np.any(y != np.round(y)):
         raise ValueError("counts: must be whole numbers >= 0")
     seasonal = len(days) >= SEASON_MIN_DAYS

@@ -17,7 +17,8 @@ ORANGE = "#E69F00"
 VERMILLION = "#D55E00"
 GREEN = "#009E73"
 SKY = "#56B4E9"
-BANDS = (("0.025", "0.975", "95%", 0.18), ("0.1", "0.9", "80%", 0.32), ("0.25", "0.75", "50%", 0.55))
+BANDS = (("0.025", "0.975", "95%", 0.18), ("0.1", "0.9", "80%", 0.32),
+         ("0.25", "0.75", "50%", 0.55))
 
 
 def _layout(fig: go.Figure, **extra: Any) -> go.Figure:
@@ -99,7 +100,8 @@ def survival_fit(group: dict[str, Any], km_time: list[float], km_surv: list[floa
     fig = go.Figure()
     fig.add_trace(go.Scatter(x=[0.0, *km_time], y=[1.0, *km_surv], mode="lines",
                              line_shape="hv", name="Kaplan-Meier", line={"color": "black"}))
-    fig.add_trace(go.Scatter(x=grid, y=fitted, mode="lines", name=f"Coxian, {group['phases']} phases",
+    fig.add_trace(go.Scatter(x=grid, y=fitted, mode="lines",
+                             name=f"Coxian, {group['phases']} phases",
                              line={"color": ORANGE, "width": 3, "dash": "dot"}))
     _layout(fig, xaxis={"title": "days in the unit"}, yaxis={"title": "still in", "range": [0, 1]},
             height=280, hovermode="closest")

@@ -112,6 +112,7 @@ def model_page(request: Request, unit: str, session: SessionDep, actor: ReadActo
     if run is not None:
         result = json.loads(run.result)
         context["backtest"] = result
-        context["pit_json"] = json.dumps(figures.pit_histogram(result.get("pit", {}).get("morrow", [])))
+        pit = result.get("pit", {}).get("morrow", [])
+        context["pit_json"] = json.dumps(figures.pit_histogram(pit))
     context["past"] = _past_forecasts(session, unit)
     return templates.TemplateResponse(request, "model.html", context)
