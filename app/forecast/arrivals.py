@@ -4,6 +4,15 @@ not yet booked, all from what was known at the training cut-off.
 - Emergency admissions per local day: :func:`app.stats.arrivals.fit_daily_rate` (Poisson GLM
   with weekday and season, negative binomial only where overdispersed), and the clock-hour
   profile of their arrival.
+- The unit's capacity: a full unit turns emergencies away (they go to another unit or
+  hospital) and those leave no row in the files, so admitted counts understate the demand
+  exactly when the unit is busy. The most patients the unit has held beyond its staffed beds
+  (``excess_beds``, escalation beds) gives its ceiling, staffed beds + excess; the time the
+  unit was at that ceiling was closed to emergencies. The daily count is fitted with the
+  share of the day open to admissions as its exposure (weighted by the arrival clock
+  profile), and the clock profile is divided by each hour's open share: both then describe
+  the demand, which the forecast thins again through the ceiling
+  (:func:`app.stats.occupancy.occupancy_days`, ``limits``).
 - Known bookings: the chance a booking still open ``L`` days before its planned date goes
   ahead, by lead ``L`` (cancellations grow near the day), and the clock-hour profile of
   elective admissions.
@@ -15,18 +24,22 @@ not yet booked, all from what was known at the training cut-off.
 from __future__ import annotations
 
 from collections.abc import Mapping
-from datetime import date, timedelta
+from datetime import date, datetime, time, timedelta
 from typing import Any
 
 import numpy as np
 import pandas as pd
 
 from app.state import UnitState
-from app.stats.arrivals import DailyRateModel, fit_daily_rate, hourly_profile
+from app.stats.arrivals import MIN_EXPOSURE, DailyRateModel, fit_daily_rate, hourly_profile
+from app.timeutil import localize
 
 MAX_LEAD = 28
 FIT_WINDOW_DAYS = 2 * 365
 ELECTIVE_WINDOW_DAYS = 26 * 7
+# Resolution at which the unit's fullness is read from the stays (minutes).
+OPEN_GRID_MINUTES = 15
+NS_PER_MINUTE = 60 * 10**9
 
 
 def _local(series: pd.Series, state: UnitState) -> pd.Series:
@@ -51,10 +64,78 @@ def _window(state: UnitState, days: int) -> tuple[date, date]:
     return first, last
 
 
-def _daily_counts(admitted_local: pd.Series, first: date, last: date) -> tuple[list[date], np.ndarray]:
+def _daily_counts(admitted_local: pd.Series, first: date, last: date
+                  ) -> tuple[list[date], np.ndarray]:
     days = [first + timedelta(days=i) for i in range((last - first).days + 1)]
     counts = admitted_local.dt.date.value_counts()
     return days, np.array([int(counts.get(d, 0)) for d in days])
+
+
+def _ns(values: pd.Series) -> np.ndarray:
+    return np.asarray(pd.DatetimeIndex(values).asi8, dtype=np.int64)
+
+
+def _occupancy_at(state: UnitState, at_ns: np.ndarray) -> np.ndarray:
+    """Stays in the unit at each instant (UTC ns), as known at ``state.as_of``: admitted at or
+    before it and not discharged by then."""
+    admitted = np.sort(_ns(state.stays["admitted_at"]))
+    discharged = np.sort(_ns(state.stays["discharged_at"].dropna()))
+    return (np.searchsorted(admitted, at_ns, side="right")
+            - np.searchsorted(discharged, at_ns, side="right"))
+
+
+def capacity_excess(state: UnitState, first: date, last: date) -> int | None:
+    """The most patients the unit held beyond its staffed beds right after an admission on the
+    local days ``first``..``last`` (0 if it never went over); None without a bed count.
+
+    A unit that admits up to staffed beds + this many and no further turns arrivals away at
+    that ceiling; the maximum is where occupancy peaks (just after an admission)."""
+    stays = state.stays
+    local_day = _local(stays["admitted_at"], state).dt.date
+    inside = ((local_day >= first) & (local_day <= last)).to_numpy()
+    if not inside.any():
+        return None
+    beds_by_day = {d: state.beds_on(d) for d in set(local_day[inside])}
+    beds = np.array([np.nan if beds_by_day[d] is None else beds_by_day[d]
+                     for d in local_day[inside]], dtype=float)
+    if np.all(np.isnan(beds)):
+        return None
+    occupied = _occupancy_at(state, _ns(stays["admitted_at"])[inside])
+    return max(0, int(np.nanmax(occupied - beds)))
+
+
+def open_shares(state: UnitState, first: date, last: date, excess: int,
+                hour_weight: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Share of each local day ``first``..``last`` (weighted by ``hour_weight``, 24 values) and
+    of each clock hour (over the whole window) that the unit was below its ceiling of staffed
+    beds + ``excess``, read every ``OPEN_GRID_MINUTES`` minutes."""
+    start = pd.Timestamp(localize(datetime.combine(first, time(0)), state.tz))
+    stop = pd.Timestamp(localize(datetime.combine(last + timedelta(days=1), time(0)), state.tz))
+    grid = pd.date_range(start, stop, freq=f"{OPEN_GRID_MINUTES}min", inclusive="left")
+    local = grid.tz_convert(state.tz)
+    day_index = (local.tz_localize(None).normalize() - pd.Timestamp(first)).days.to_numpy()
+    n_days = (last - first).days + 1
+    day_index = np.clip(day_index, 0, n_days - 1)
+    beds = np.array([state.beds_on(first + timedelta(days=i)) for i in range(n_days)],
+                    dtype=object)
+    ceiling = np.array([np.inf if b is None else b + excess for b in beds], dtype=float)
+    is_open = (_occupancy_at(state, np.asarray(grid.asi8, dtype=np.int64))
+               < ceiling[day_index]).astype(float)
+    hour = np.asarray(local.hour, dtype=np.int64)
+    weight = np.asarray(hour_weight, dtype=float)[hour]
+    by_day = (np.bincount(day_index, weights=weight * is_open, minlength=n_days)
+              / np.maximum(np.bincount(day_index, weights=weight, minlength=n_days), 1e-300))
+    by_hour = (np.bincount(hour, weights=is_open, minlength=24)
+               / np.maximum(np.bincount(hour, minlength=24), 1))
+    return np.clip(by_day, 0.0, 1.0), by_hour
+
+
+def _demand_profile(admitted_hours: pd.Series, open_by_hour: np.ndarray) -> np.ndarray:
+    """Clock-hour profile of the demand: the admitted profile over each hour's open share (an
+    hour the unit was often full admitted fewer of the arrivals it was offered)."""
+    admitted = hourly_profile(admitted_hours)
+    demand = admitted / np.maximum(open_by_hour, MIN_EXPOSURE)
+    return demand / demand.sum()
 
 
 def train_arrivals(state: UnitState) -> dict[str, Any]:
@@ -64,14 +145,27 @@ def train_arrivals(state: UnitState) -> dict[str, Any]:
     emergency = stays["admission_type"] == "emergency"
     first, last = _window(state, FIT_WINDOW_DAYS)
     days, counts = _daily_counts(admitted[emergency], first, last)
-    rate = fit_daily_rate(days, counts)
+    profile = hourly_profile(admitted[emergency].dt.hour)
+    excess = capacity_excess(state, first, last) if first <= last else None
+    exposure = None
+    if excess is not None:
+        _, by_hour = open_shares(state, first, last, excess, np.ones(24))
+        profile = _demand_profile(admitted[emergency].dt.hour, by_hour)
+        by_day, _ = open_shares(state, first, last, excess, profile)
+        if int(np.sum(by_day >= MIN_EXPOSURE)) >= 14:
+            exposure = by_day
+        else:  # too few open days to fit on: the admitted counts as they are, no ceiling
+            excess, profile = None, hourly_profile(admitted[emergency].dt.hour)
+    rate = fit_daily_rate(days, counts, exposure=exposure)
     elective = ~emergency
     return {
         "emergency": {
             "rate": rate.to_dict(),
-            "hour_profile": hourly_profile(admitted[emergency].dt.hour).tolist(),
+            "hour_profile": profile.tolist(),
             "window": [first.isoformat(), last.isoformat()],
         },
+        "capacity": {"excess_beds": excess,
+                     "open_share": None if exposure is None else float(np.mean(exposure))},
         "elective": {
             "p_go_by_lead": _p_go_by_lead(state),
             "hour_profile": hourly_profile(admitted[elective].dt.hour).tolist(),
@@ -133,3 +227,10 @@ def _unbooked_rates(state: UnitState) -> list[list[float]]:
 
 def emergency_rate(arrivals: Mapping[str, Any]) -> DailyRateModel:
     return DailyRateModel.from_dict(arrivals["emergency"]["rate"])
+
+
+def excess_beds(arrivals: Mapping[str, Any]) -> int | None:
+    """Beds the unit fills beyond its staffed count at most (None: no ceiling known; models
+    trained before the ceiling was learnt have none and keep their admitted rates)."""
+    value = arrivals.get("capacity", {}).get("excess_beds")
+    return None if value is None else int(value)

@@ -12,7 +12,8 @@ Baselines (METHODS.md section 5), each a full distribution so that proper scores
 - ``same_weekday``: the census at the same weekday and time over the last eight weeks,
   as an empirical distribution;
 - ``mean_stay``: each current patient leaves at their admission group's mean remaining stay
-  (given the time already spent); arrivals and bookings as in Morrow's forecast;
+  (given the time already spent); arrivals, bookings and the unit's ceiling as in Morrow's
+  forecast;
 - ``one_distribution``: one Kaplan-Meier stay distribution for everyone, current patients by
   their time spent, and Poisson arrivals at the past year's mean daily rate;
 - ``time_series``: a seasonal ARIMA (statsmodels SARIMAX, weekly season) of the daily census,
@@ -105,16 +106,18 @@ def _baselines(known: UnitState, record: ModelRecord, instants: list[datetime],
     groups = los.groups.group_of(los.design.covariate_matrix(current)) if len(current) else []
     leave = np.array([los.groups.get(int(g)).distribution.conditional(float(d)).mean()
                       for g, d in zip(groups, current["days_in"], strict=True)])
-    p_det = (leave[:, None] > census_at[None, :]).astype(float) if len(current) else np.zeros((0, n))
+    p_det = ((leave[:, None] > census_at[None, :]).astype(float) if len(current)
+             else np.zeros((0, n)))
     det_days = occupancy_days(p_det, morrow_like.booked, morrow_like.streams, census_at,
-                              [None] * n)
+                              [None] * n, morrow_like.limits)
     out["mean_stay"] = [d.pmf for d in det_days]
     # one_distribution: one KM for everyone, constant Poisson arrivals.
     hist = known.history()
     km = kaplan_meier(hist["los_days"].clip(lower=0).to_numpy(), hist["event"].to_numpy())
     spent = current["days_in"].to_numpy()
     s_now = np.maximum(km.sf(spent), 1e-12)
-    p_km = (km.sf(spent[:, None] + census_at[None, :]) / s_now[:, None]) if len(current) else np.zeros((0, n))
+    p_km = ((km.sf(spent[:, None] + census_at[None, :]) / s_now[:, None]) if len(current)
+            else np.zeros((0, n)))
     year_ago = known.as_of - pd.Timedelta(days=365)
     recent = hist.loc[hist["admitted_at"] > max(year_ago, hist["admitted_at"].min())]
     span = max((known.as_of - recent["admitted_at"].min()).total_seconds() / 86400, 1.0)

@@ -66,7 +66,7 @@ def booking_check(state: UnitState, record: ModelRecord, candidate: Candidate,
     horizon = (last - today).days + likely_days + 2
     inputs = forecast_inputs(state, record, horizon)
     base = occupancy_days(inputs.predictions.p_present, inputs.booked, inputs.streams,
-                          inputs.census_at, inputs.beds)
+                          inputs.census_at, inputs.beds, inputs.limits)
     hour = admit_hour(record.payload["arrivals"]["elective"]["hour_profile"])
 
     def evaluate(day: date) -> dict[str, Any]:

@@ -17,7 +17,7 @@ import numpy as np
 import pandas as pd
 from sqlalchemy.orm import Session
 
-from app.forecast.arrivals import MAX_LEAD, emergency_rate, train_arrivals
+from app.forecast.arrivals import MAX_LEAD, emergency_rate, excess_beds, train_arrivals
 from app.forecast.los import LosModel, predict_stays, train_los
 from app.forecast.models import newest_model, save_model
 from app.state import UnitState, load_state
@@ -147,6 +147,8 @@ class ForecastInputs:
     predictions: Any
     booked: BookedAdmissions
     streams: list[ArrivalStream]
+    # The most patients the unit holds at each instant (None: no ceiling known).
+    limits: list[int | None] | None = None
 
 
 @dataclass(frozen=True, eq=False)
@@ -169,6 +171,7 @@ class Backdrop:
     beds: list[int | None]
     booked: BookedAdmissions
     streams: list[ArrivalStream]
+    limits: list[int | None]
     newcomers: Newcomers
     draws: PathDraws | None
 
@@ -204,7 +207,16 @@ def forecast_backdrop(state: UnitState, record: ModelRecord, *, days: int = DEFA
     return Backdrop(unit=state.unit, as_of=state.as_of, stay_ids=stay_ids, los=los,
                     instants=instants, census_at=census_at, local_days=local_days, beds=beds,
                     booked=booked, streams=streams,
+                    limits=_limits(beds, excess_beds(arrivals), len(stay_ids)),
                     newcomers=newcomers(booked, streams, census_at), draws=draws)
+
+
+def _limits(beds: list[int | None], excess: int | None, in_unit: int) -> list[int | None]:
+    """The unit's ceiling at each census instant: staffed beds plus the escalation beds it has
+    been seen to use, and never below the patients in the unit now (it holds them already)."""
+    if excess is None:
+        return [None] * len(beds)
+    return [None if b is None else max(b + excess, in_unit) for b in beds]
 
 
 def forecast_inputs(state: UnitState, record: ModelRecord, days: int) -> ForecastInputs:
@@ -217,7 +229,7 @@ def _inputs(backdrop: Backdrop, state: UnitState) -> ForecastInputs:
         instants=backdrop.instants, census_at=backdrop.census_at,
         local_days=backdrop.local_days, beds=backdrop.beds,
         predictions=predict_stays(backdrop.los, state, backdrop.instants),
-        booked=backdrop.booked, streams=backdrop.streams)
+        booked=backdrop.booked, streams=backdrop.streams, limits=backdrop.limits)
 
 
 def expected_admissions(inputs: ForecastInputs) -> list[float]:
@@ -260,7 +272,7 @@ def forecast_on(backdrop: Backdrop, state: UnitState, record: ModelRecord
     if tuple(inputs.predictions.stay_ids) != backdrop.stay_ids:
         raise ValueError("state: other current stays than the backdrop's")
     p_present = inputs.predictions.p_present
-    results = with_current(p_present, backdrop.newcomers, inputs.beds)
+    results = with_current(p_present, backdrop.newcomers, inputs.beds, backdrop.limits)
     out_days = []
     for instant, local_day, bed_count, result in zip(inputs.instants, inputs.local_days,
                                                      inputs.beds, results, strict=True):
@@ -275,7 +287,7 @@ def forecast_on(backdrop: Backdrop, state: UnitState, record: ModelRecord
         "stays": inputs.predictions.records(),
     }
     if backdrop.draws is not None:
-        sims = backdrop.draws.counts(p_present)
+        sims = backdrop.draws.counts(p_present, backdrop.limits)
         payload["p_over_capacity_any_day"] = float(
             np.mean((sims > np.asarray(inputs.beds)[None, :]).any(axis=1)))
     return payload, inputs

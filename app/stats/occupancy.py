@@ -19,6 +19,25 @@ week") need joint paths, drawn by :func:`simulate_paths` from the same inputs: a
 keeps one uniform draw for the week (present at h_k while U < p_i(h_k)), so its days are
 consistent; arrivals and bookings draw a whole stay each.
 
+A unit with a ceiling (``limits``: the most patients it holds, staffed plus escalation beds)
+turns arrivals away when full, which the sum above ignores: with the arrival streams at their
+*demand*, the infinite-server count has mass above the ceiling and too much spread. Given the
+f patients who are never turned away (current stays, bookings), the arrivals still present are
+taken as their infinite-server count truncated at the room left, c - f, and renormalised: the
+modified offered-load approximation of a loss system with time-varying arrivals (Jagerman
+1975, Bell System Technical Journal 54:625-661; analysed by Massey & Whitt 1994, Annals of
+Applied Probability 4:1145-1160; both cited from memory), applied to the arrivals given the
+room the others leave. In steady state with Poisson arrivals and no one else in the unit it is
+exact whatever the stay distribution: the truncated Poisson of the Erlang loss model, so
+P(full) is the Erlang B blocking probability. Truncating the whole total instead would also
+turn current patients away; on the demo ward that put too little probability on a full unit
+(2026-05..10, every second morning, horizons 1-7: 8.1 % of outcomes at the ceiling, 5.7 %
+forecast by the whole-total truncation, 7.7 % by this one; critical care 11.0 %, 10.0 %,
+12.1 %). The components stay expected counts that add up to the mean (current stays and
+bookings unchanged). In joint paths, arrivals that would take a
+path over the ceiling at a census instant are turned away there (the latest first) and stay
+away on later days.
+
 Times are in days after ``as_of``. Arrivals are placed at the midpoints of their slots in both
 the exact and the simulated forms, so the two describe the same model.
 """
@@ -193,29 +212,72 @@ class Newcomers:
     """Patients not in the unit yet (booked, and still to come), at each census instant.
 
     A new score for a current patient cannot change this part, so a page keeps it while
-    scores come in and only redoes the current patients' part.
+    scores come in and only redoes the current patients' part. Per instant: the bookings'
+    pmf, the arrival streams' pmfs by name (emergency, elective), and their expected counts.
     """
 
-    pmfs: tuple[FloatArray, ...]
-    components: tuple[dict[str, float], ...]
+    booked: tuple[FloatArray, ...]
+    arriving: tuple[dict[str, FloatArray], ...]
+    booked_mean: tuple[float, ...]
+    arriving_mean: tuple[dict[str, float], ...]
 
 
 def newcomers(booked: BookedAdmissions, streams: Sequence[ArrivalStream],
               census_at: npt.ArrayLike) -> Newcomers:
-    """The exact occupancy distribution of bookings and arrival streams at each instant."""
+    """The exact distributions of bookings and arrival streams still present at each instant."""
     h = np.asarray(census_at, dtype=float)
     p_booked = booked.p_present(h)
     presence = [stream_presence(s, h) for s in streams]
-    pmfs, components = [], []
+    pmfs, arriving, arriving_mean = [], [], []
     for k in range(h.size):
-        parts = [poisson_binomial_pmf(p_booked[:, k])]
-        counts = {"emergency": 0.0, "elective": float(p_booked[:, k].sum())}
+        pmfs.append(poisson_binomial_pmf(p_booked[:, k]))
+        by_name: dict[str, list[FloatArray]] = {}
+        means: dict[str, float] = {}
         for stream, present in zip(streams, presence, strict=True):
-            parts.append(_stream_pmf(present[:, k], stream.size))
-            counts[stream.name] += float(present[:, k].sum())
-        pmfs.append(convolve_pmfs(*parts))
-        components.append(counts)
-    return Newcomers(tuple(pmfs), tuple(components))
+            by_name.setdefault(stream.name, []).append(_stream_pmf(present[:, k], stream.size))
+            means[stream.name] = means.get(stream.name, 0.0) + float(present[:, k].sum())
+        arriving.append({name: convolve_pmfs(*parts) for name, parts in by_name.items()})
+        arriving_mean.append(means)
+    return Newcomers(tuple(pmfs), tuple(arriving),
+                     tuple(float(v) for v in p_booked.sum(axis=0)), tuple(arriving_mean))
+
+
+def _within_limit(fixed: FloatArray, streams: Mapping[str, FloatArray], limit: int
+                  ) -> tuple[FloatArray, dict[str, float]]:
+    """The occupancy when arrivals are turned away at ``limit``, and each stream's expected
+    count still present.
+
+    Given f patients who are never turned away (current stays and bookings; pmf ``fixed``),
+    the arrivals still present, N (the streams' pmfs by name in ``streams``), are truncated at
+    the room left, c - f, and renormalised; where f alone reaches the limit no arrival gets
+    in. Stream g keeps sum_f P(f) E[N_g | N <= c - f] with
+    E[N_g 1{N <= r}] = sum_y y P(N_g = y) P(N - N_g <= r - y).
+    """
+    arrivals = convolve_pmfs(*streams.values())
+    cdf = np.cumsum(arrivals)
+    rooms = np.arange(limit + 1)
+    partial = {}  # E[N_g 1{N <= r}] for every room r = 0..limit
+    for name, part in streams.items():
+        others = [q for other, q in streams.items() if other != name]
+        other_cdf = np.cumsum(convolve_pmfs(*others)) if others else np.ones(1)
+        y = np.arange(min(part.size, limit + 1))
+        room_left = rooms[:, None] - y[None, :]
+        lookup = other_cdf[np.clip(room_left, 0, other_cdf.size - 1)]
+        partial[name] = np.sum(np.where(room_left >= 0, y * part[: y.size] * lookup, 0.0),
+                               axis=1)
+    pmf = np.zeros(max(limit + 1, fixed.size))
+    expected = dict.fromkeys(streams, 0.0)
+    for f in np.flatnonzero(fixed > 0):
+        room = limit - int(f)
+        m = min(room + 1, arrivals.size)
+        kept = float(cdf[m - 1]) if room >= 0 else 0.0
+        if kept <= 0.0:
+            pmf[f] += fixed[f]
+            continue
+        pmf[f:f + m] += fixed[f] * arrivals[:m] / kept
+        for name in streams:
+            expected[name] += float(fixed[f] * partial[name][room] / kept)
+    return pmf / pmf.sum(), expected
 
 
 def occupancy_days(
@@ -224,8 +286,9 @@ def occupancy_days(
     streams: Sequence[ArrivalStream],
     census_at: npt.ArrayLike,
     beds: Sequence[int | None],
+    limits: Sequence[int | None] | None = None,
 ) -> list[OccupancyDay]:
-    """Exact occupancy distribution at each census instant.
+    """Exact occupancy distribution at each census instant (within the unit's ceiling, if set).
 
     Parameters
     ----------
@@ -237,23 +300,40 @@ def occupancy_days(
         Census instants, days after as_of, increasing.
     beds : sequence of int or None, length K
         Staffed beds at each instant (None: not set, no p_over_capacity).
+    limits : sequence of int or None, length K, optional
+        The most patients the unit can hold at each instant (None: no ceiling): arrivals are
+        turned away there (module docstring), current stays and bookings never are.
 
     Returns
     -------
     list of OccupancyDay
     """
-    return with_current(p_current, newcomers(booked, streams, census_at), beds)
+    return with_current(p_current, newcomers(booked, streams, census_at), beds, limits)
 
 
-def with_current(p_current: npt.ArrayLike, others: Newcomers,
-                 beds: Sequence[int | None]) -> list[OccupancyDay]:
-    """Add the current stays (Poisson-binomial) to the newcomers, instant by instant."""
-    n_instants = len(others.pmfs)
+def with_current(p_current: npt.ArrayLike, others: Newcomers, beds: Sequence[int | None],
+                 limits: Sequence[int | None] | None = None) -> list[OccupancyDay]:
+    """Add the current stays (Poisson-binomial) to the newcomers, instant by instant, and
+    turn arrivals away at the ceiling."""
+    n_instants = len(others.booked)
     p_now = np.asarray(p_current, dtype=float).reshape(-1, n_instants)
+    ceiling = [None] * n_instants if limits is None else list(limits)
+    if len(ceiling) != n_instants:
+        raise ValueError(f"limits: needs one per census instant ({n_instants}), "
+                         f"got {len(ceiling)}")
     out = []
     for k in range(n_instants):
-        pmf = convolve_pmfs(poisson_binomial_pmf(p_now[:, k]), others.pmfs[k])
-        components = {"current": float(p_now[:, k].sum()), **others.components[k]}
+        fixed = convolve_pmfs(poisson_binomial_pmf(p_now[:, k]), others.booked[k])
+        arriving = others.arriving[k]
+        stream_mean = others.arriving_mean[k]
+        pmf = convolve_pmfs(fixed, *arriving.values())
+        limit = ceiling[k]
+        if limit is not None and arriving and pmf.size > limit + 1:
+            pmf, stream_mean = _within_limit(fixed, arriving, int(limit))
+        components = {"current": float(p_now[:, k].sum()), "emergency": 0.0,
+                      "elective": others.booked_mean[k]}
+        for name, value in stream_mean.items():
+            components[name] += value
         quantiles = dict(zip((f"{q:g}" for q in QUANTILE_LEVELS),
                              (int(v) for v in pmf_quantile(pmf, QUANTILE_LEVELS)), strict=True))
         over = None if beds[k] is None else float(pmf_sf_over(pmf, beds[k]))
@@ -264,21 +344,40 @@ def with_current(p_current: npt.ArrayLike, others: Newcomers,
 
 @dataclass(frozen=True, eq=False)
 class PathDraws:
-    """The random part of ``n_paths`` joint paths that does not depend on current patients'
-    probabilities: one uniform per path and current stay, and the newcomers' counts."""
+    """The random part of ``n_paths`` joint paths, drawn once: one uniform per path and
+    current stay, the bookings' counts, and every arrival (its path, time and presence at
+    each instant). :meth:`counts` adds any current probabilities and applies the ceiling."""
 
     stay_draws: FloatArray
-    newcomer_counts: npt.NDArray[np.int64]
+    booked_counts: npt.NDArray[np.int64]
+    path: npt.NDArray[np.int64]
+    arrive: FloatArray
+    present: npt.NDArray[np.bool_]
 
-    def counts(self, p_current: npt.ArrayLike) -> npt.NDArray[np.int64]:
-        """Occupancy along every path, shape (n_paths, K): current stays and newcomers."""
-        counts = self.newcomer_counts.copy()
-        p_now = np.asarray(p_current, dtype=float).reshape(-1, counts.shape[1])
+    def counts(self, p_current: npt.ArrayLike,
+               limits: Sequence[int | None] | None = None) -> npt.NDArray[np.int64]:
+        """Occupancy along every path, shape (n_paths, K).
+
+        With ``limits``, arrivals that would take a path over the ceiling at a census
+        instant are turned away, the latest first, and stay away later (where only earlier
+        arrivals are left to take off, they leave early: a full unit moves a patient out to
+        make room)."""
+        counts = self.booked_counts.copy()
+        n_paths, n_instants = counts.shape
+        p_now = np.asarray(p_current, dtype=float).reshape(-1, n_instants)
         if p_now.shape[0] != self.stay_draws.shape[1]:
             raise ValueError(f"p_current: drawn for {self.stay_draws.shape[1]} stays, "
                              f"got {p_now.shape[0]}")
-        for k in range(counts.shape[1]):
+        ceiling = [None] * n_instants if limits is None else list(limits)
+        admitted = np.ones(self.path.size, dtype=bool)
+        for k in range(n_instants):
             counts[:, k] += (self.stay_draws < p_now[:, k]).sum(axis=1)
+            counts[:, k] += np.bincount(self.path[admitted & self.present[:, k]],
+                                        minlength=n_paths)
+            limit = ceiling[k]
+            if limit is not None:
+                _turn_away(counts[:, k], int(limit), self.path, self.arrive,
+                           self.present[:, k], admitted)
         return counts
 
 
@@ -298,9 +397,12 @@ def draw_paths(
         goes = rng.random(n_paths) < g
         length = np.asarray(stay.sample(n_paths, rng), dtype=float)
         counts += (goes[:, None] & (h[None, :] >= a) & (h[None, :] < a + length[:, None]))
-    for stream in streams:
-        _add_stream_paths(counts, stream, h, rng)
-    return PathDraws(stay_draws, counts)
+    drawn = [_stream_arrivals(stream, h, n_paths, rng) for stream in streams]
+    path = np.concatenate([d[0] for d in drawn]) if drawn else np.zeros(0, dtype=np.int64)
+    arrive = np.concatenate([d[1] for d in drawn]) if drawn else np.zeros(0)
+    present = (np.concatenate([d[2] for d in drawn]) if drawn
+               else np.zeros((0, h.size), dtype=bool))
+    return PathDraws(stay_draws, counts, path, arrive, present)
 
 
 def simulate_paths(
@@ -310,19 +412,23 @@ def simulate_paths(
     census_at: npt.ArrayLike,
     n_paths: int,
     rng: np.random.Generator,
+    limits: Sequence[int | None] | None = None,
 ) -> npt.NDArray[np.int64]:
-    """Occupancy at every instant along ``n_paths`` joint paths; shape (n_paths, K)."""
+    """Occupancy at every instant along ``n_paths`` joint paths; shape (n_paths, K), with
+    arrivals turned away at ``limits`` (:meth:`PathDraws.counts`)."""
     h = np.asarray(census_at, dtype=float)
     p_now = np.asarray(p_current, dtype=float).reshape(-1, h.size)
-    return draw_paths(p_now.shape[0], booked, streams, h, n_paths, rng).counts(p_now)
+    return draw_paths(p_now.shape[0], booked, streams, h, n_paths, rng).counts(p_now, limits)
 
 
-def _add_stream_paths(counts: npt.NDArray[np.int64], stream: ArrivalStream, h: FloatArray,
-                      rng: np.random.Generator) -> None:
+def _stream_arrivals(stream: ArrivalStream, h: FloatArray, n_paths: int,
+                     rng: np.random.Generator
+                     ) -> tuple[npt.NDArray[np.int64], FloatArray, npt.NDArray[np.bool_]]:
+    """One stream's arrivals on every path: path index, arrival time, present at each instant."""
     at = np.asarray(stream.slot_at, dtype=float)
     mean = np.asarray(stream.slot_mean, dtype=float)
     day = np.asarray(stream.slot_day, dtype=int)
-    n_paths = counts.shape[0]
+    paths, times, present = [], [], []
     for d in np.unique(day):
         slots = np.flatnonzero(day == d)
         day_mean = mean[slots].sum()
@@ -335,11 +441,36 @@ def _add_stream_paths(counts: npt.NDArray[np.int64], stream: ArrivalStream, h: F
         total = int(n.sum())
         if total == 0:
             continue
-        path = np.repeat(np.arange(n_paths), n)
         arrive = at[slots][rng.choice(slots.size, size=total, p=mean[slots] / day_mean)]
         length = np.asarray(stream.stay.sample(total, rng), dtype=float)
-        present = (h[None, :] > arrive[:, None]) & (h[None, :] < arrive[:, None] + length[:, None])
-        np.add.at(counts, path, present.astype(np.int64))
+        paths.append(np.repeat(np.arange(n_paths), n))
+        times.append(arrive)
+        present.append((h[None, :] > arrive[:, None])
+                       & (h[None, :] < arrive[:, None] + length[:, None]))
+    if not paths:
+        return np.zeros(0, dtype=np.int64), np.zeros(0), np.zeros((0, h.size), dtype=bool)
+    return np.concatenate(paths), np.concatenate(times), np.concatenate(present)
+
+
+def _turn_away(count: npt.NDArray[np.int64], limit: int, path: npt.NDArray[np.int64],
+               arrive: FloatArray, present: npt.NDArray[np.bool_],
+               admitted: npt.NDArray[np.bool_]) -> None:
+    """Within each path over ``limit``, mark its latest arrivals still present as turned away
+    (``admitted`` False) and take them off ``count``, in place. Current patients and bookings
+    are never taken off, so a path they alone fill stays over."""
+    over = np.maximum(count - limit, 0)
+    if not over.any():
+        return
+    idx = np.flatnonzero(admitted & present & (over[path] > 0))
+    if not idx.size:
+        return
+    idx = idx[np.lexsort((-arrive[idx], path[idx]))]
+    p = path[idx]
+    first = np.r_[0, np.flatnonzero(p[1:] != p[:-1]) + 1]
+    rank = np.arange(idx.size) - np.repeat(first, np.diff(np.r_[first, idx.size]))
+    away = idx[rank < over[p]]
+    admitted[away] = False
+    count -= np.bincount(path[away], minlength=count.size)
 
 
 def day_to_json(day: OccupancyDay) -> Mapping[str, Any]:

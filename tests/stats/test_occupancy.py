@@ -149,3 +149,74 @@ def test_negative_binomial_stream_is_wider_than_poisson() -> None:
     assert var(b) > 1.2 * var(a)
     # scipy cross-check of the Poisson part's shape.
     np.testing.assert_allclose(a.pmf[:20], stats.poisson(a.mean).pmf(np.arange(20)), atol=1e-12)
+
+
+def test_ceiling_in_steady_state_is_the_erlang_loss_model() -> None:
+    # Ten beds, Poisson arrivals 10 a day, exponential stays of mean 1 day: offered load 10
+    # Erlangs. In steady state the loss system's occupancy is the Poisson truncated at the ten
+    # beds (the Erlang loss model; insensitive to the stay's shape), so P(full) is the Erlang B
+    # blocking: 0.2146 for 10 servers at 10 Erlangs (published Erlang B tables, as quoted in
+    # METHODS.md section 4, 4 decimals).
+    stream = hourly_stream("emergency", 10.0, 40, Coxian.exponential(1.0))
+    day = occupancy_days(np.zeros((0, 1)), NO_BOOKINGS, [stream], [40.0], [10], [10])[0]
+    assert day.pmf.size == 11
+    assert day.pmf[10] == pytest.approx(0.2146, abs=5e-4)  # hourly slots move the load by 1e-4
+    # The whole pmf against scipy's Poisson with the same offered load, truncated.
+    load = float(stream_presence(stream, np.array([40.0])).sum())
+    want = stats.poisson(load).pmf(np.arange(11)) / stats.poisson(load).cdf(10)
+    np.testing.assert_allclose(day.pmf, want, atol=1e-12)
+    assert day.p_over_capacity == 0.0  # nothing above the ten staffed beds
+    assert day.mean == pytest.approx(load * (1 - day.pmf[10]), rel=1e-9)  # carried load
+
+
+def test_patients_certain_to_stay_leave_arrivals_an_erlang_loss_unit_of_the_rest() -> None:
+    # Four patients who will certainly still be in, a ceiling of 14: arrivals see 10 free beds,
+    # so in steady state their count is the Erlang loss model with 10 servers (published
+    # Erlang B tables, as quoted in METHODS.md section 4: 0.2146 at 10 Erlangs) on top of four.
+    stream = hourly_stream("emergency", 10.0, 40, Coxian.exponential(1.0))
+    day = occupancy_days(np.ones((4, 1)), NO_BOOKINGS, [stream], [40.0], [12], [14])[0]
+    load = float(stream_presence(stream, np.array([40.0])).sum())
+    want = np.r_[np.zeros(4), stats.poisson(load).pmf(np.arange(11)) / stats.poisson(load).cdf(10)]
+    np.testing.assert_allclose(day.pmf, want, atol=1e-12)
+    assert day.pmf[14] == pytest.approx(0.2146, abs=5e-4)
+    assert day.components["current"] == 4.0
+    assert day.components["emergency"] == pytest.approx(load * (1 - day.pmf[14]), rel=1e-9)
+
+
+def test_ceiling_keeps_components_adding_up_and_current_patients_in() -> None:
+    p_current, booked, streams, census_at = mixed_inputs()
+    open_days = occupancy_days(p_current, booked, streams, census_at, [16] * 7)
+    capped = occupancy_days(p_current, booked, streams, census_at, [16] * 7, [17] * 7)
+    p_booked = booked.p_present(census_at)
+    bit = 0
+    for k, (a, b) in enumerate(zip(open_days, capped, strict=True)):
+        assert b.pmf.size <= 18 and abs(b.pmf.sum() - 1) < 1e-9 and b.pmf.min() >= 0
+        assert sum(b.components.values()) == pytest.approx(b.mean, rel=1e-9)
+        # Current patients and bookings are never turned away; arrivals only lose.
+        assert b.components["current"] == pytest.approx(p_current[:, k].sum(), rel=1e-12)
+        assert b.components["emergency"] <= a.components["emergency"] + 1e-12
+        assert b.components["elective"] >= p_booked[:, k].sum() - 1e-12
+        assert b.mean <= a.mean + 1e-12
+        # Arrivals that would go over are turned away, so a full unit is no less likely.
+        assert b.pmf[17] >= a.pmf[17] - 1e-12
+        bit += a.pmf.size > 18 and a.pmf[18:].sum() > 1e-3
+    assert bit  # the ceiling matters on some day of this example
+
+
+def test_paths_under_a_ceiling_never_exceed_it_and_turn_away_arrivals() -> None:
+    p_current, booked, streams, census_at = mixed_inputs()
+    n = 20_000
+    free = simulate_paths(p_current, booked, streams, census_at, n, np.random.default_rng(5))
+    high = simulate_paths(p_current, booked, streams, census_at, n, np.random.default_rng(5),
+                          [free.max() + 1] * 7)
+    np.testing.assert_array_equal(free, high)  # a ceiling never reached changes nothing
+    capped = simulate_paths(p_current, booked, streams, census_at, n, np.random.default_rng(5),
+                            [17] * 7)
+    assert capped.max() <= 17 and free.max() > 17
+    # Only paths that went over change, and a path is never above its unbounded self.
+    assert np.all(capped <= free)
+    np.testing.assert_array_equal(capped[(free <= 17).all(axis=1)],
+                                  free[(free <= 17).all(axis=1)])
+    # Turned-away arrivals stay away: on some later day a path sits below both the ceiling
+    # and its unbounded self.
+    assert np.any((capped < free) & (capped < 17))
