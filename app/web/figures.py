@@ -7,6 +7,7 @@ line is black and dashed.
 
 from __future__ import annotations
 
+from functools import lru_cache
 from typing import Any
 
 import numpy as np
@@ -21,41 +22,56 @@ BANDS = (("0.025", "0.975", "95%", 0.18), ("0.1", "0.9", "80%", 0.32),
          ("0.25", "0.75", "50%", 0.55))
 
 
+LAYOUT: dict[str, Any] = {"margin": {"l": 50, "r": 20, "t": 30, "b": 40}, "font": {"size": 14},
+                          "legend": {"orientation": "h", "y": -0.18},
+                          "hovermode": "x unified"}
+
+
 def _layout(fig: go.Figure, **extra: Any) -> go.Figure:
-    settings: dict[str, Any] = {"margin": {"l": 50, "r": 20, "t": 30, "b": 40},
-                                "template": "plotly_white", "font": {"size": 14},
-                                "legend": {"orientation": "h", "y": -0.18},
-                                "hovermode": "x unified"}
-    fig.update_layout(**{**settings, **extra})
+    fig.update_layout(**{**LAYOUT, "template": "plotly_white", **extra})
     return fig
 
 
 def fan_chart(forecast: dict[str, Any], occupied_now: int, as_of_label: str) -> dict[str, Any]:
-    """Occupancy bands (50/80/95%) at each census instant, the median and the staffed beds."""
+    """Occupancy bands (50/80/95%) at each census instant, the median and the staffed beds.
+
+    Built as plain figure JSON rather than through ``go.Figure``: the page rebuilds it after
+    every score, and plotly's validation took about half of that page's time."""
     days = forecast["days"]
     x = [as_of_label] + [census_label(d["census_at"]) for d in days]
-    fig = go.Figure()
+    traces: list[dict[str, Any]] = []
     for low, high, label, alpha in BANDS:
         lows = [occupied_now] + [d["quantiles"][low] for d in days]
         highs = [occupied_now] + [d["quantiles"][high] for d in days]
-        fig.add_trace(go.Scatter(x=x, y=highs, mode="lines", line={"width": 0},
-                                 showlegend=False, hoverinfo="skip"))
-        fig.add_trace(go.Scatter(x=x, y=lows, mode="lines", line={"width": 0}, fill="tonexty",
-                                 fillcolor=f"rgba({BLUE}, {alpha})", name=f"{label} band",
-                                 hovertemplate=f"{label}: %{{y}}–<extra></extra>"))
-    fig.add_trace(go.Scatter(x=x, y=[occupied_now] + [d["quantiles"]["0.5"] for d in days],
-                             mode="lines+markers", name="median",
-                             line={"color": f"rgb({BLUE})", "width": 3}))
+        traces.append({"type": "scatter", "x": x, "y": highs, "mode": "lines",
+                       "line": {"width": 0}, "showlegend": False, "hoverinfo": "skip"})
+        traces.append({"type": "scatter", "x": x, "y": lows, "mode": "lines",
+                       "line": {"width": 0}, "fill": "tonexty",
+                       "fillcolor": f"rgba({BLUE}, {alpha})", "name": f"{label} band",
+                       "hovertemplate": f"{label}: %{{y}}–<extra></extra>"})
+    traces.append({"type": "scatter", "x": x,
+                   "y": [occupied_now] + [d["quantiles"]["0.5"] for d in days],
+                   "mode": "lines+markers", "name": "median",
+                   "line": {"color": f"rgb({BLUE})", "width": 3}})
     beds = [d["beds"] for d in days]
     if all(b is not None for b in beds):
-        fig.add_trace(go.Scatter(x=x, y=[beds[0]] + beds, mode="lines", name="staffed beds",
-                                 line={"color": "black", "dash": "dash", "width": 2},
-                                 line_shape="hv"))
+        traces.append({"type": "scatter", "x": x, "y": [beds[0]] + beds, "mode": "lines",
+                       "name": "staffed beds",
+                       "line": {"color": "black", "dash": "dash", "width": 2, "shape": "hv"}})
     top = max([d["quantiles"]["0.975"] for d in days] + [b or 0 for b in beds] + [occupied_now])
-    _layout(fig, yaxis={"title": "patients at census", "rangemode": "tozero",
-                        "range": [0, top + 2], "dtick": 2 if top < 30 else 5},
-            xaxis={"type": "category"}, height=360)
-    return fig.to_plotly_json()
+    return {"data": traces, "layout": {
+        **LAYOUT, "template": _template(),
+        "yaxis": {"title": {"text": "patients at census"}, "rangemode": "tozero",
+                  "range": [0, top + 2], "dtick": 2 if top < 30 else 5},
+        "xaxis": {"type": "category"}, "height": 360}}
+
+
+@lru_cache(maxsize=1)
+def _template() -> dict[str, Any]:
+    """The plotly_white template as figure JSON (what ``template="plotly_white"`` embeds)."""
+    import plotly.io as pio
+
+    return dict(pio.templates["plotly_white"].to_plotly_json())
 
 
 def census_label(census_at: str) -> str:
