@@ -10,6 +10,7 @@ from __future__ import annotations
 import json
 from dataclasses import dataclass
 from datetime import UTC, date, datetime, time, timedelta
+from functools import cached_property
 from typing import Any
 from zoneinfo import ZoneInfo
 
@@ -29,9 +30,9 @@ from app.stats.occupancy import (
     StayMixture,
     day_to_json,
     draw_paths,
-    newcomers,
     with_current,
 )
+from app.stats.occupancy import newcomers as newcomers_present
 from app.store.models import StoredForecast
 from app.timeutil import census_instants_after, iso, localize
 
@@ -172,8 +173,13 @@ class Backdrop:
     booked: BookedAdmissions
     streams: list[ArrivalStream]
     limits: list[int | None]
-    newcomers: Newcomers
     draws: PathDraws | None
+
+    @cached_property
+    def newcomers(self) -> Newcomers:
+        """Bookings and arrivals still present, exactly; made when first needed, so callers
+        that only want the inputs (booking check, backtest) do not pay for it."""
+        return newcomers_present(self.booked, self.streams, self.census_at)
 
 
 def forecast_backdrop(state: UnitState, record: ModelRecord, *, days: int = DEFAULT_DAYS,
@@ -207,8 +213,7 @@ def forecast_backdrop(state: UnitState, record: ModelRecord, *, days: int = DEFA
     return Backdrop(unit=state.unit, as_of=state.as_of, stay_ids=stay_ids, los=los,
                     instants=instants, census_at=census_at, local_days=local_days, beds=beds,
                     booked=booked, streams=streams,
-                    limits=_limits(beds, excess_beds(arrivals), len(stay_ids)),
-                    newcomers=newcomers(booked, streams, census_at), draws=draws)
+                    limits=_limits(beds, excess_beds(arrivals), len(stay_ids)), draws=draws)
 
 
 def _limits(beds: list[int | None], excess: int | None, in_unit: int) -> list[int | None]:
