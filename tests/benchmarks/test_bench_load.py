@@ -17,15 +17,12 @@ from __future__ import annotations
 import os
 import random
 import re
-import signal
-import socket
 import statistics
-import subprocess
-import sys
 import threading
 import time
 from collections import defaultdict
 from collections.abc import Iterator
+from contextlib import contextmanager
 from dataclasses import dataclass, field
 from datetime import UTC, datetime, timedelta
 from pathlib import Path
@@ -35,13 +32,14 @@ import httpx2 as httpx
 import pytest
 from sqlalchemy import func, select
 
-from app.config import PROJECT_ROOT, get_settings
+from app.config import get_settings
 from app.demo.load import load_demo
 from app.forecast.service import train_model
 from app.store import db
 from app.store.models import Observation
 from tests.conftest import DEMO_DIR, UTC_ZONE
 from tests.security.fixtures import make_user
+from tests.security.test_workers import cpu_ticks, serve, worker_pids
 
 CLIENTS = 20
 DURATION_S = 60.0
@@ -57,23 +55,32 @@ READS = {"unit page": f"/units/{UNIT}", "forecast api": f"/api/units/{UNIT}/fore
 SAME_STAY_GAP_S = 1.1
 
 
-def free_port() -> int:
-    with socket.socket() as sock:
-        sock.bind(("127.0.0.1", 0))
-        return int(sock.getsockname()[1])
-
-
 @dataclass
 class Server:
     base_url: str
     db_url: str
+    workers: int
     stderr_path: Path
 
 
-@pytest.fixture
-def server(db_url: str, tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> Iterator[Server]:
-    monkeypatch.setenv("MORROW_TIMEZONE", "UTC")
-    get_settings.cache_clear()
+def wait_until_idle(pids: list[int], timeout_s: float = 180.0) -> None:
+    """Until every worker has finished starting (their CPU time stops growing)."""
+    deadline = time.monotonic() + timeout_s
+    last = sum(cpu_ticks(p) for p in pids)
+    while time.monotonic() < deadline:
+        time.sleep(1.0)
+        now = sum(cpu_ticks(p) for p in pids)
+        if now - last < 10:  # under 0.1 s of CPU in the last second, all workers together
+            return
+        last = now
+    raise AssertionError(f"the workers were still busy starting after {timeout_s:g} s")
+
+
+@contextmanager
+def load_server(db_url: str, tmp_path: Path, clients: int, workers: int = 1
+                ) -> Iterator[Server]:
+    """`morrow serve` over the demo hospital with a model for UNIT and one nurse in charge
+    per client, started and warmed up (MORROW_TIMEZONE=UTC must be set by the caller)."""
     with db.session_scope(db_url) as session:
         load_demo(session, DEMO_DIR, tz=UTC_ZONE, shift=True)
     with db.session_scope(db_url) as session:
@@ -81,38 +88,25 @@ def server(db_url: str, tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> Iter
         # then: train until a minute ago, or the first minute would find no model.
         until = datetime.now(UTC).replace(second=0, microsecond=0) - timedelta(minutes=1)
         train_model(session, UNIT, until, UTC_ZONE)
-    for c in range(CLIENTS):
+    for c in range(clients):
         make_user(db_url, f"load.nurse{c:02d}", "nurse_in_charge", PASSWORD)
     db.get_engine(db_url).dispose()
-    port = free_port()
-    stderr_path = tmp_path / "server.err"
-    with open(stderr_path, "wb") as stderr:
-        child = subprocess.Popen(
-            [sys.executable, "-m", "app.cli.main", "--db", db_url, "serve", "--host",
-             "127.0.0.1", "--port", str(port)],
-            cwd=PROJECT_ROOT, env={**os.environ, "MORROW_TIMEZONE": "UTC"},
-            stdout=subprocess.DEVNULL, stderr=stderr)
-    base = f"http://127.0.0.1:{port}"
-    try:
-        deadline = time.monotonic() + 90
-        while True:
-            assert child.poll() is None, stderr_path.read_text()
-            try:
-                if httpx.get(f"{base}/health", timeout=2).status_code == 200:
-                    break
-            except httpx.TransportError:
-                pass
-            assert time.monotonic() < deadline, "the server did not start in 90 s"
-            time.sleep(0.2)
-        yield Server(base, db_url, stderr_path)
-    finally:
-        child.send_signal(signal.SIGTERM)
-        try:
-            child.wait(timeout=20)
-        except subprocess.TimeoutExpired:
-            child.kill()
-            child.wait()
-        get_settings.cache_clear()
+    log = tmp_path / "server.err"
+    with serve(db_url, workers, log, start_timeout_s=180) as running:
+        if workers > 1:
+            pids = worker_pids(running.process.pid)
+            assert len(pids) == workers, pids
+            wait_until_idle(pids)
+        yield Server(running.base, db_url, workers, log)
+
+
+@pytest.fixture
+def server(db_url: str, tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> Iterator[Server]:
+    monkeypatch.setenv("MORROW_TIMEZONE", "UTC")
+    get_settings.cache_clear()
+    with load_server(db_url, tmp_path, CLIENTS) as running:
+        yield running
+    get_settings.cache_clear()
 
 
 @dataclass
@@ -232,22 +226,23 @@ def unloaded_costs(base: str) -> dict[str, float]:
     return costs
 
 
-@pytest.mark.parametrize("pause_s", [0.0, 1.0], ids=["no-pause", "think-1s"])
-def test_load_twenty_clients_sixty_seconds(server: Server, pause_s: float) -> None:
-    for kind, ms in unloaded_costs(server.base_url).items():
-        print(f"\nBENCH   one client alone: {kind:<24} {ms:6.0f} ms", end="")
+def run_load(server: Server, clients: int, *, pause_s: float = 0.0,
+             sign_in_timeout_s: float = 300.0) -> None:
+    """``clients`` signed-in clients for DURATION_S against ``server``: prints the figures and
+    checks that nothing failed or was lost and that the server logged no patient id."""
     tally = Tally()
-    start = threading.Barrier(CLIENTS + 1)
+    start = threading.Barrier(clients + 1)
     stop_at = [float("inf")]
     threads = [threading.Thread(target=run_client, args=(n, server.base_url, start, stop_at,
                                                          tally, pause_s), daemon=True)
-               for n in range(CLIENTS)]
+               for n in range(clients)]
     for t in threads:
         t.start()
     try:
-        start.wait(timeout=300)  # every client has signed in
+        start.wait(timeout=sign_in_timeout_s)  # every client has signed in
     except threading.BrokenBarrierError:
         pytest.fail(f"the clients could not all sign in: {tally.errors[:5]}")
+    load_before = os.getloadavg()[0]
     began = time.monotonic()
     stop_at[0] = began + DURATION_S
     for t in threads:
@@ -263,13 +258,15 @@ def test_load_twenty_clients_sixty_seconds(server: Server, pause_s: float) -> No
     everything = [ms for values in tally.latencies.values() for ms in values]
     requests = len(everything)
     median, p95 = statistics.median(everything), percentile(everything, 95)
+    setup = (f"{server.workers} worker{'s' if server.workers > 1 else ''}, "
+             f"mean pause {pause_s:g} s")
     verdict = "ok" if p95 <= P95_TARGET_MS else "OVER TARGET"
-    print(f"\nBENCH load average during the run: {os.getloadavg()[0]:.1f} (2 cores)")
-    print(f"BENCH load: {CLIENTS} clients, mean pause {pause_s:g} s, {wall:.0f} s, "
-          f"{requests} requests "
+    print(f"\nBENCH load [{setup}]: load average {load_before:.1f} before the run, "
+          f"{os.getloadavg()[0]:.1f} after (2 cores)")
+    print(f"BENCH load [{setup}]: {clients} clients, {wall:.0f} s, {requests} requests "
           f"({requests / wall:.1f}/s), {len(tally.errors)} errors, "
           f"{sum(accepted.values())} scores accepted, {sum(stored.values())} stored")
-    print(f"BENCH load latency: median {median:.0f} ms, p95 {p95:.0f} ms "
+    print(f"BENCH load [{setup}] latency: median {median:.0f} ms, p95 {p95:.0f} ms "
           f"(target p95 {P95_TARGET_MS:.0f} ms) {verdict}")
     for kind, values in sorted(tally.latencies.items()):
         print(f"BENCH   {kind:<13} n={len(values):<5} median {statistics.median(values):6.0f} ms"
@@ -281,3 +278,10 @@ def test_load_twenty_clients_sixty_seconds(server: Server, pause_s: float) -> No
     log = server.stderr_path.read_text(errors="replace")
     assert "Traceback" not in log
     assert not [s for s in tally.stay_ids if s in log]  # no patient id in the server's log
+
+
+@pytest.mark.parametrize("pause_s", [0.0, 1.0], ids=["no-pause", "think-1s"])
+def test_load_twenty_clients_sixty_seconds(server: Server, pause_s: float) -> None:
+    for kind, ms in unloaded_costs(server.base_url).items():
+        print(f"\nBENCH   one client alone: {kind:<24} {ms:6.0f} ms", end="")
+    run_load(server, CLIENTS, pause_s=pause_s)

@@ -123,7 +123,8 @@ def free_port() -> int:
 
 
 @contextmanager
-def serve(url: str, workers: int, log: Path) -> Iterator[Server]:
+def serve(url: str, workers: int, log: Path, *, start_timeout_s: float = 90.0
+          ) -> Iterator[Server]:
     """`morrow serve --workers N` in a child process on a free loopback port."""
     port = free_port()
     script = Path(sys.executable).parent / "morrow"
@@ -134,7 +135,7 @@ def serve(url: str, workers: int, log: Path) -> Iterator[Server]:
             stderr=err)
     base = f"http://127.0.0.1:{port}"
     try:
-        deadline = time.monotonic() + 90
+        deadline = time.monotonic() + start_timeout_s
         while True:
             assert process.poll() is None, log.read_text(errors="replace")
             try:
@@ -142,7 +143,8 @@ def serve(url: str, workers: int, log: Path) -> Iterator[Server]:
                     break
             except httpx.TransportError:
                 pass
-            assert time.monotonic() < deadline, "the server did not start in 90 s"
+            assert time.monotonic() < deadline, \
+                f"the server did not start in {start_timeout_s:g} s"
             time.sleep(0.2)
         yield Server(base, process, log)
     finally:
