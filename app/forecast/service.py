@@ -31,6 +31,7 @@ from app.stats.occupancy import (
     day_to_json,
     draw_paths,
     with_current,
+    with_exact_marginals,
 )
 from app.stats.occupancy import newcomers as newcomers_present
 from app.store.models import StoredForecast
@@ -292,7 +293,8 @@ def forecast_on(backdrop: Backdrop, state: UnitState, record: ModelRecord
         "stays": inputs.predictions.records(),
     }
     if backdrop.draws is not None:
-        sims = backdrop.draws.counts(p_present, backdrop.limits)
+        sims = with_exact_marginals(backdrop.draws.counts(p_present, backdrop.limits),
+                                    [r.pmf for r in results], backdrop.draws.tie_break)
         payload["p_over_capacity_any_day"] = float(
             np.mean((sims > np.asarray(inputs.beds)[None, :]).any(axis=1)))
     return payload, inputs

@@ -66,7 +66,7 @@ QUANTILE_LEVELS = (0.025, 0.05, 0.1, 0.25, 0.5, 0.75, 0.9, 0.95, 0.975)
 
 __all__ = ["ArrivalStream", "BookedAdmissions", "Newcomers", "OccupancyDay", "PathDraws",
            "StayDistribution", "StayMixture", "draw_paths", "newcomers", "occupancy_days",
-           "simulate_paths", "stream_presence", "with_current"]
+           "simulate_paths", "stream_presence", "with_current", "with_exact_marginals"]
 
 
 class StayDistribution(Protocol):
@@ -353,6 +353,7 @@ class PathDraws:
     path: npt.NDArray[np.int64]
     arrive: FloatArray
     present: npt.NDArray[np.bool_]
+    tie_break: FloatArray
 
     def counts(self, p_current: npt.ArrayLike,
                limits: Sequence[int | None] | None = None) -> npt.NDArray[np.int64]:
@@ -402,7 +403,27 @@ def draw_paths(
     arrive = np.concatenate([d[1] for d in drawn]) if drawn else np.zeros(0)
     present = (np.concatenate([d[2] for d in drawn]) if drawn
                else np.zeros((0, h.size), dtype=bool))
-    return PathDraws(stay_draws, counts, path, arrive, present)
+    return PathDraws(stay_draws, counts, path, arrive, present, rng.random(n_paths))
+
+
+def with_exact_marginals(counts: npt.NDArray[np.int64], pmfs: Sequence[FloatArray],
+                         tie_break: FloatArray) -> npt.NDArray[np.int64]:
+    """Paths whose count on each night follows that night's exact pmf, in the paths' order.
+
+    Under a ceiling the paths turn the latest arrivals away at census instants, which piles
+    the overflow at the ceiling (a censored count), while the exact forecast truncates the
+    arrivals (the loss model's answer): on the demo's critical care unit the paths put twice
+    the exact chance on a full night. Replacing each night's counts by the exact quantile at
+    their rank keeps the paths' dependence between nights and the exact chance for each night
+    (an empirical-copula reordering; ties in a count broken by ``tie_break``, one uniform per
+    path)."""
+    out = np.empty_like(counts)
+    n = counts.shape[0]
+    levels = (np.arange(n) + 0.5) / n
+    for k, pmf in enumerate(pmfs):
+        order = np.lexsort((tie_break, counts[:, k]))
+        out[order, k] = pmf_quantile(pmf, levels)
+    return out
 
 
 def simulate_paths(
