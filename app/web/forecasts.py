@@ -54,7 +54,7 @@ class Shown:
 
 
 _cache: OrderedDict[tuple[Any, ...], Shown] = OrderedDict()
-_backdrops: OrderedDict[tuple[Any, ...], tuple[Backdrop, UnitState]] = OrderedDict()
+_backdrops: OrderedDict[tuple[Any, ...], tuple[Backdrop | None, UnitState]] = OrderedDict()
 _lock = threading.Lock()
 _compute_lock = threading.Lock()
 _stored: dict[tuple[Any, ...], datetime] = {}
@@ -74,24 +74,20 @@ def forecast_moment(now: datetime, written_at: datetime | None) -> datetime:
 def current(session: Session, unit: str, *, as_of: datetime | None = None,
             days: int = 7) -> Shown:
     """The forecast for ``unit`` now (to the minute) or at ``as_of``."""
-    tz = get_settings().tz
     markers = repo.data_markers(session)
     if as_of is None:
         moment = forecast_moment(current_time().astimezone(UTC), markers.written_at)
     else:
         moment = as_of.astimezone(UTC)
     where = str(session.get_bind().url)
+    record: ModelRecord | None = None
+    problem = None
     try:
         record = model_for(session, unit, moment)
     except NoModel as exc:
-        key = (where, unit, None, moment, days, markers.latest)
-        with _lock:
-            if key in _cache:
-                return _cache[key]
-        shown = Shown(None, load_state(session, unit, moment, tz, with_history=False), str(exc))
-        _remember(key, shown)
-        return shown
-    key = (where, unit, record.id, moment, days, markers.latest)
+        problem = str(exc)
+    model_id = None if record is None else record.id
+    key = (where, unit, model_id, moment, days, markers.latest)
     with _lock:
         if key in _cache:
             _cache.move_to_end(key)
@@ -102,25 +98,29 @@ def current(session: Session, unit: str, *, as_of: datetime | None = None,
         with _lock:
             if key in _cache:
                 return _cache[key]
-        backdrop, state = _backdrop(session, (where, unit, record.id, moment, days,
+        backdrop, state = _backdrop(session, (where, unit, model_id, moment, days,
                                               markers.structure), record, days)
-        forecast, inputs = forecast_on(backdrop, state, record)
-        shown = Shown(forecast, state, None, expected_admissions(inputs))
+        if record is None or backdrop is None:
+            shown = Shown(None, state, problem)
+        else:
+            forecast, inputs = forecast_on(backdrop, state, record)
+            shown = Shown(forecast, state, None, expected_admissions(inputs))
         _remember(key, shown)
-    if as_of is None:
+    if as_of is None and record is not None:
         _store_now_and_then(session, shown.forecast, (where, unit, record.id), moment)
     return shown
 
 
-def _backdrop(session: Session, key: tuple[Any, ...], record: ModelRecord, days: int
-              ) -> tuple[Backdrop, UnitState]:
-    """The forecast's backdrop and a state with the current observations. Only scores came
-    in since the backdrop was made when its key (with the structure marker) is unchanged."""
+def _backdrop(session: Session, key: tuple[Any, ...], record: ModelRecord | None, days: int
+              ) -> tuple[Backdrop | None, UnitState]:
+    """The forecast's backdrop (None without a model) and a state with the current
+    observations. Only scores came in since the backdrop was made when its key (with the
+    structure marker) is unchanged, so only the observations are read again."""
     found = _backdrops.get(key)
     if found is None:
         _, unit, _, moment, _, _ = key
         state = load_state(session, unit, moment, get_settings().tz, with_history=False)
-        backdrop = forecast_backdrop(state, record, days=days)
+        backdrop = None if record is None else forecast_backdrop(state, record, days=days)
         _backdrops[key] = (backdrop, state)
         while len(_backdrops) > BACKDROPS:
             _backdrops.popitem(last=False)
