@@ -211,7 +211,8 @@ def _unbooked_rates(state: UnitState) -> list[list[float]]:
     elective, admitted_day = elective.loc[keep], admitted_day.loc[keep]
     booked = state.bookings.set_index("booking_id")["booked_at"]
     booked_day = _local(elective["booking_id"].map(booked), state).dt.date
-    lead_of = [(a - b).days if isinstance(b, date) else 10**6
+    # No booking (NaT: pandas' missing time, which is also a ``date``) counts at every lead.
+    lead_of = [0 if pd.isna(b) else (a - b).days
                for a, b in zip(admitted_day, booked_day, strict=True)]
     weekdays = pd.Series([d.weekday() for d in admitted_day], index=elective.index)
     n_days = np.bincount([(first + timedelta(days=i)).weekday()
