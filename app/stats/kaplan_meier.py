@@ -11,6 +11,14 @@ Ends and censorings at the same time follow the usual convention: the censored s
 at risk at that time. After the last duration the curve stays at its last value (undefined in
 truth when the longest stay is censored).
 
+Delayed entry (left truncation): an extract that starts on a given day holds the stays admitted
+before it only if they lasted until then, so they are known to have lasted at least their time
+in the unit at the extract's start, ``entry``. Such a stay joins the risk set just after
+``entry``: n_j counts the stays with entry < t_j <= duration (the estimate lifelines'
+``KaplanMeierFitter(entry=...)`` computes), and a stay that ended at its entry time carries no
+information and is left out. Without this, the long stays that survived into the extract
+inflate the curve's tail.
+
 References
 ----------
 Kaplan EL, Meier P (1958). Nonparametric estimation from incomplete observations. Journal of the
@@ -42,7 +50,7 @@ class KaplanMeier:
     survival : tuple of float
         S just after each time.
     at_risk : tuple of int
-        Stays with duration >= each time.
+        Stays at risk at each time: entry < time <= duration.
     events : tuple of int
         Stays ending at each time.
     """
@@ -122,8 +130,25 @@ def check_stays(durations: npt.ArrayLike, observed: npt.ArrayLike
     return x, ended.astype(bool)
 
 
-def kaplan_meier(durations: npt.ArrayLike, observed: npt.ArrayLike) -> KaplanMeier:
-    """Kaplan-Meier estimate from stay durations.
+def check_entry(entry: npt.ArrayLike | None, durations: npt.NDArray[np.float64]
+                ) -> npt.NDArray[np.float64]:
+    """Delayed-entry times (0 <= entry <= duration, same shape) as an array; zeros if None."""
+    if entry is None:
+        return np.zeros_like(durations)
+    e = np.asarray(entry, dtype=float)
+    if e.shape != durations.shape:
+        raise ValueError(f"entry: shape {e.shape} does not match durations {durations.shape}")
+    bad = np.flatnonzero(~np.isfinite(e) | (e < 0) | (e > durations))
+    if bad.size:
+        i = bad[0]
+        raise ValueError(f"entry: must be finite, >= 0 and <= the duration; position {i} is "
+                         f"{e[i]!r} with duration {durations[i]!r}")
+    return e
+
+
+def kaplan_meier(durations: npt.ArrayLike, observed: npt.ArrayLike,
+                 entry: npt.ArrayLike | None = None) -> KaplanMeier:
+    """Kaplan-Meier estimate from stay durations, with delayed entry where given.
 
     Parameters
     ----------
@@ -131,16 +156,26 @@ def kaplan_meier(durations: npt.ArrayLike, observed: npt.ArrayLike) -> KaplanMei
         Length of each stay, or time so far for a stay still in progress (>= 0).
     observed : array_like of bool or 0/1, shape (n,)
         True when the stay has ended, False when censored.
+    entry : array_like, shape (n,), optional
+        Time in the unit at which each stay came under observation (left truncation), from 0
+        up to its duration; default 0 for all.
 
     Returns
     -------
     KaplanMeier
     """
     x, ended = check_stays(durations, observed)
+    e = check_entry(entry, x)
+    informative = (e < x) | (x == 0)  # a zero-length stay seen from admission still counts
+    x, ended, e = x[informative], ended[informative], np.sort(e[informative])
+    if x.size == 0:
+        raise ValueError("entry: every stay ended at its entry time; nothing to estimate")
     time, inverse = np.unique(x, return_inverse=True)
     leaving = np.bincount(inverse, minlength=time.size)
     events = np.bincount(inverse, weights=ended.astype(float), minlength=time.size)
-    at_risk = x.size - np.r_[0, np.cumsum(leaving)[:-1]]
+    not_yet_entered = x.size - np.searchsorted(e, time, side="left")
+    not_yet_entered[time == 0] = 0  # entry 0 means seen from admission, at risk at 0 too
+    at_risk = x.size - np.r_[0, np.cumsum(leaving)[:-1]] - not_yet_entered
     survival = np.cumprod(1.0 - events / at_risk)
     return KaplanMeier(
         time=tuple(time),

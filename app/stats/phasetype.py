@@ -27,7 +27,9 @@ one ``scipy.linalg.expm`` per distribution instead of one per point.
 Fitting (maximum likelihood, right censoring): durations are binned on a grid of step h
 (``resolution``, by default an hour or finer); an ended stay in bin k = floor(x / h) contributes
 the probability of leaving during [k h, (k + 1) h), divided by h for the reported
-log-likelihood, and an ongoing stay contributes S(k h). Recorded durations are thus read as
+log-likelihood, and an ongoing stay contributes S(k h). A stay under observation only from
+``entry`` days in (left truncation: admitted before the extract began) is conditioned on having
+lasted that long, dividing its term by S(floor(entry / h) h). Recorded durations are thus read as
 truncated to the grid: for stays recorded to the hour by truncation this is the exact
 interval-censored likelihood, and with resolution 1 it is exact for stays counted in whole days
 by truncation. Durations rounded up to the grid would sit one bin late (subtract h / 2 first to
@@ -69,7 +71,7 @@ import pandas as pd
 from scipy import linalg, optimize
 from threadpoolctl import ThreadpoolController
 
-from app.stats.kaplan_meier import check_stays
+from app.stats.kaplan_meier import check_entry, check_stays
 
 __all__ = [
     "Coxian",
@@ -591,8 +593,11 @@ def log_likelihood(
     durations: npt.ArrayLike,
     observed: npt.ArrayLike,
     weights: npt.ArrayLike | None = None,
+    entry: npt.ArrayLike | None = None,
 ) -> float:
-    """Right-censored log-likelihood sum_i w_i [d_i log f(x_i) + (1 - d_i) log S(x_i)].
+    """Log-likelihood sum_i w_i [d_i log f(x_i) + (1 - d_i) log S(x_i) - log S(e_i)].
+
+    Right censoring and delayed entry e_i (left truncation; 0 when not given).
 
     Parameters
     ----------
@@ -603,6 +608,8 @@ def log_likelihood(
         True when the stay has ended (an event), False when censored.
     weights : array_like, shape (n,), optional
         Frequency weights (default 1).
+    entry : array_like, shape (n,), optional
+        Days in the unit when each stay came under observation, 0 <= entry <= duration.
 
     Returns
     -------
@@ -610,10 +617,11 @@ def log_likelihood(
         Evaluated at the durations as given (no grid rounding).
     """
     x, d, w = _validate_stays(durations, observed, weights)
+    e = check_entry(entry, x)
     log_f = distribution.logpdf(x)
     log_s = distribution.logsf(x)
     with np.errstate(invalid="ignore"):
-        terms = np.where(d == 1, log_f, log_s) * w
+        terms = (np.where(d == 1, log_f, log_s) - distribution.logsf(e)) * w
     terms[w == 0] = 0.0
     return float(terms.sum())
 
@@ -630,6 +638,8 @@ class _StayGrid:
     event_weight: FloatArray
     censored_index: IntArray
     censored_weight: FloatArray
+    entry_index: IntArray
+    entry_weight: FloatArray
     step: float
     scale: float
     resolution: float
@@ -649,8 +659,10 @@ def _build_grid(
     observed: npt.ArrayLike,
     weights: npt.ArrayLike | None,
     resolution: float | None,
+    entry: npt.ArrayLike | None = None,
 ) -> _StayGrid:
     x, d, w = _validate_stays(durations, observed, weights)
+    e = check_entry(entry, x)
     total_weight = float(w.sum())
     n_events = float((w * d).sum())
     mean_duration = float((w * x).sum() / total_weight)
@@ -673,12 +685,18 @@ def _build_grid(
     k = np.floor(x / resolution + 1e-9).astype(np.int64)
     event_index, event_weight = _aggregate(k, w * d)
     censored_index, censored_weight = _aggregate(k, w * (1 - d))
-    scale = max(float((w * x).sum() / n_events), resolution)
+    entered_late = e > 0
+    entry_index, entry_weight = _aggregate(
+        np.floor(e[entered_late] / resolution + 1e-9).astype(np.int64), w[entered_late])
+    # Time under observation (x - e) for the starting scale: the exponential MLE's mean.
+    scale = max(float((w * (x - e)).sum() / n_events), resolution)
     return _StayGrid(
         event_index=event_index,
         event_weight=event_weight,
         censored_index=censored_index,
         censored_weight=censored_weight,
+        entry_index=entry_index,
+        entry_weight=entry_weight,
         step=resolution / scale,
         scale=scale,
         resolution=float(resolution),
@@ -693,7 +711,8 @@ class _GridObjective:
     ``theta = log(lam_1..lam_{p-1}, mu_1..mu_p)`` in scaled time units, h = grid step. An ended
     stay in bin k contributes the probability of leaving during [k h, (k + 1) h),
     ``v_k . c`` with ``v_k = alpha exp(T h)^k`` and ``c = (I - exp(T h)) 1``; an ongoing stay
-    contributes ``S(k h) = v_k . 1``. ``exp(T h)`` and ``c`` are the blocks of the exponential
+    contributes ``S(k h) = v_k . 1``, and a stay entering late at bin j subtracts ``log S(j h)``.
+    ``exp(T h)`` and ``c`` are the blocks of the exponential
     of the augmented generator ``[[T, t], [0, 0]] h``, which gives ``c`` without cancellation.
     """
 
@@ -745,8 +764,10 @@ class _GridObjective:
         bin_prob = np.maximum(at_events @ exit_in_step, _TINY)
         at_censored = states[grid.censored_index]
         survival = np.maximum(at_censored.sum(axis=1), _TINY)
+        at_entry = np.maximum(states[grid.entry_index].sum(axis=1), _TINY)
         log_lik = float(
             grid.event_weight @ np.log(bin_prob) + grid.censored_weight @ np.log(survival)
+            - grid.entry_weight @ np.log(at_entry)
         )
 
         # Backward: adjoint[k] = b_k + adjoint[k + 1] E^T for all k at once (doubling scan).
@@ -754,6 +775,7 @@ class _GridObjective:
         adjoint = np.zeros((n_grid, p))
         adjoint[grid.event_index] += event_ratio[:, None] * exit_in_step
         adjoint[grid.censored_index] += (grid.censored_weight / survival)[:, None]
+        adjoint[grid.entry_index] -= (grid.entry_weight / at_entry)[:, None]
         shift, level = 1, 0
         while shift < n_grid:
             adjoint[: n_grid - shift] += adjoint[shift:] @ powers[level].T
@@ -1001,6 +1023,7 @@ def fit_coxian(
     n_starts: int = 4,
     resolution: float | None = None,
     rng: np.random.Generator | int | None = None,
+    entry: npt.ArrayLike | None = None,
 ) -> CoxianFit:
     """Fit a Coxian with ``n_phases`` phases by maximum likelihood with right censoring.
 
@@ -1031,6 +1054,9 @@ def fit_coxian(
         in whole days.
     rng : numpy.random.Generator, int or None
         For the random starts.
+    entry : array_like, shape (n,), optional
+        Days in the unit when each stay came under observation (left truncation), 0 <= entry
+        <= duration; each stay's term is divided by S(entry). Default 0 for all.
 
     Returns
     -------
@@ -1045,7 +1071,7 @@ def fit_coxian(
         raise ValueError(f"n_phases: must be an integer >= 1, got {n_phases!r}")
     if n_starts < 1:
         raise ValueError(f"n_starts: must be >= 1, got {n_starts!r}")
-    grid = _build_grid(durations, observed, weights, resolution)
+    grid = _build_grid(durations, observed, weights, resolution, entry)
     generator = _as_rng(rng)
     fit, _ = _fit_on_grid(grid, int(n_phases), n_starts, None, generator)
     return fit
@@ -1061,6 +1087,7 @@ def select_coxian(
     n_starts: int = 4,
     resolution: float | None = None,
     rng: np.random.Generator | int | None = None,
+    entry: npt.ArrayLike | None = None,
 ) -> CoxianSelection:
     """Fit Coxians with p = 1..max_phases and choose p by BIC = -2 log L + (2p - 1) log n.
 
@@ -1071,7 +1098,7 @@ def select_coxian(
 
     Parameters
     ----------
-    durations, observed, weights, n_starts, resolution, rng
+    durations, observed, weights, n_starts, resolution, rng, entry
         As in :func:`fit_coxian`.
     max_phases : int, default 10
         Largest p tried.
@@ -1089,7 +1116,7 @@ def select_coxian(
         raise ValueError(f"patience: must be >= 1 or None, got {patience!r}")
     if n_starts < 1:
         raise ValueError(f"n_starts: must be >= 1, got {n_starts!r}")
-    grid = _build_grid(durations, observed, weights, resolution)
+    grid = _build_grid(durations, observed, weights, resolution, entry)
     generator = _as_rng(rng)
     fits: list[CoxianFit] = []
     previous: FloatArray | None = None
