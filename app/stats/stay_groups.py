@@ -151,10 +151,20 @@ class StayGroups:
                    groups=tuple(StayGroup.from_dict(g) for g in data["groups"]))
 
 
+def _leaf_curve(days: FloatArray, ended: npt.NDArray[np.bool_], entry: FloatArray
+                ) -> KaplanMeier:
+    """The leaf's Kaplan-Meier curve on the display grid, entries rounded down to it."""
+    shown = round_up_to_hours(days, KM_GRID_HOURS)
+    per_step = 24.0 / KM_GRID_HOURS
+    return kaplan_meier(shown, ended, entry=np.minimum(np.floor(entry * per_step) / per_step,
+                                                       shown))
+
+
 def fit_stay_groups(x: npt.ArrayLike, durations: npt.ArrayLike, observed: npt.ArrayLike,
                     admission_type: Sequence[str], features: Sequence[FeatureSpec], *,
                     max_depth: int = 2, min_samples_leaf: int = 100, max_phases: int = 10,
-                    n_starts: int = 2, rng: int = 0) -> StayGroups:
+                    n_starts: int = 2, rng: int = 0,
+                    entry: npt.ArrayLike | None = None) -> StayGroups:
     """Grow the log-rank tree on admission covariates and fit each leaf's curves.
 
     Parameters
@@ -177,6 +187,13 @@ def fit_stay_groups(x: npt.ArrayLike, durations: npt.ArrayLike, observed: npt.Ar
         same BIC choice as four starts on the demo units at half the time).
     rng : int
         Seed for the Coxian random starts.
+    entry : array_like, shape (n,), optional
+        Days each stay had already spent in the unit when the extract began (0 for stays
+        admitted after it). Such left-truncated stays are only the ones that lasted into the
+        extract: they are left out of growing the tree (scikit-survival's log-rank tree has no
+        delayed entry, and dropping them keeps its splits unbiased at the cost of a few stays),
+        and enter each leaf's Kaplan-Meier curve and Coxian likelihood conditioned on their
+        time at entry.
 
     Returns
     -------
@@ -190,9 +207,21 @@ def fit_stay_groups(x: npt.ArrayLike, durations: npt.ArrayLike, observed: npt.Ar
         raise ValueError("x, durations, observed, admission_type: lengths differ")
     if not ended.any():
         raise ValueError("observed: needs at least one ended stay")
+    raw = np.asarray(durations, dtype=float)
+    late = np.zeros(days.size) if entry is None else np.asarray(entry, dtype=float)
+    if late.shape != days.shape:
+        raise ValueError(f"entry: shape {late.shape} does not match durations {days.shape}")
+    if np.any(~np.isfinite(late) | (late < 0) | (late > raw + 1e-9)):
+        raise ValueError("entry: must be finite, >= 0 and at most each stay's duration")
+    # On the hour grid an entry rounds down, so a stay stays under observation after it.
+    late = np.minimum(np.floor(np.round(late * 24.0, 6)) / 24.0, days)
+    seen_from_admission = late == 0
+    if not (ended & seen_from_admission).any():
+        raise ValueError("entry: no ended stay was seen from its admission")
     tree = SurvivalTree(max_depth=max_depth, min_samples_leaf=min_samples_leaf,
                         low_memory=False, random_state=0)
-    tree.fit(matrix, Surv.from_arrays(event=ended, time=days))
+    tree.fit(matrix[seen_from_admission],
+             Surv.from_arrays(event=ended[seen_from_admission], time=days[seen_from_admission]))
     weights = np.asarray(tree.tree_.weighted_n_node_samples, dtype=float)
     rules = TreeRules.from_sklearn(tree.tree_, features, value=weights)
     node = rules.apply(matrix)
@@ -202,17 +231,17 @@ def fit_stay_groups(x: npt.ArrayLike, durations: npt.ArrayLike, observed: npt.Ar
         mask = node == leaf
         if not mask.any():
             continue
-        leaf_days, leaf_ended = days[mask], ended[mask]
+        leaf_days, leaf_ended, leaf_entry = days[mask], ended[mask], late[mask]
         if leaf_ended.any():
             selection = select_coxian(leaf_days, leaf_ended, max_phases=max_phases,
-                                      n_starts=n_starts, rng=rng)
+                                      n_starts=n_starts, rng=rng, entry=leaf_entry)
         else:  # no ended stay: borrow the whole unit's curve rather than invent one
             selection = select_coxian(days, ended, max_phases=max_phases, n_starts=n_starts,
-                                      rng=rng)
+                                      rng=rng, entry=late)
         groups.append(StayGroup(
             node=int(leaf), rule=rules.rule(int(leaf)), n_stays=float(mask.sum()),
             n_ended=float(leaf_ended.sum()), longest_days=float(leaf_days.max()),
             share={k: float(np.sum(mask & (kinds == k)) / v) for k, v in type_totals.items()},
-            km=kaplan_meier(round_up_to_hours(leaf_days, KM_GRID_HOURS), leaf_ended),
+            km=_leaf_curve(leaf_days, leaf_ended, leaf_entry),
             coxian=selection))
     return StayGroups(tree=rules, groups=tuple(groups))
