@@ -151,6 +151,20 @@ class StayGroups:
                    groups=tuple(StayGroup.from_dict(g) for g in data["groups"]))
 
 
+def _hour_bins(days: FloatArray, ended: npt.NDArray[np.bool_], entry: FloatArray
+               ) -> dict[str, Any]:
+    """Durations rounded up to the hour moved back half an hour for the Coxian fit.
+
+    A stay of k whole hours after rounding up lasted between k - 1 and k hours; the fit reads
+    a duration as lying in the grid bin that starts there (``app.stats.phasetype``), so the
+    rounded value would sit one bin late and lengthen the fitted mean by about half an hour.
+    Returns the keyword arguments ``durations``, ``observed`` and ``entry`` of
+    ``select_coxian``.
+    """
+    centred = days - HOUR / 2.0
+    return {"durations": centred, "observed": ended, "entry": np.minimum(entry, centred)}
+
+
 def _leaf_curve(days: FloatArray, ended: npt.NDArray[np.bool_], entry: FloatArray
                 ) -> KaplanMeier:
     """The leaf's Kaplan-Meier curve on the display grid, entries rounded down to it."""
@@ -233,11 +247,11 @@ def fit_stay_groups(x: npt.ArrayLike, durations: npt.ArrayLike, observed: npt.Ar
             continue
         leaf_days, leaf_ended, leaf_entry = days[mask], ended[mask], late[mask]
         if leaf_ended.any():
-            selection = select_coxian(leaf_days, leaf_ended, max_phases=max_phases,
-                                      n_starts=n_starts, rng=rng, entry=leaf_entry)
+            selection = select_coxian(**_hour_bins(leaf_days, leaf_ended, leaf_entry),
+                                      max_phases=max_phases, n_starts=n_starts, rng=rng)
         else:  # no ended stay: borrow the whole unit's curve rather than invent one
-            selection = select_coxian(days, ended, max_phases=max_phases, n_starts=n_starts,
-                                      rng=rng, entry=late)
+            selection = select_coxian(**_hour_bins(days, ended, late), max_phases=max_phases,
+                                      n_starts=n_starts, rng=rng)
         groups.append(StayGroup(
             node=int(leaf), rule=rules.rule(int(leaf)), n_stays=float(mask.sum()),
             n_ended=float(leaf_ended.sum()), longest_days=float(leaf_days.max()),
