@@ -15,8 +15,6 @@ from lifelines.statistics import logrank_test
 from lifelines.utils import concordance_index
 from sklearn.metrics import r2_score
 from sklearn.tree import DecisionTreeRegressor
-from sksurv.compare import compare_survival
-from sksurv.util import Surv
 
 from app.forecast.los import survival_metrics
 from app.stats.stay_groups import StayGroups, fit_stay_groups, round_up_to_hours
@@ -278,16 +276,45 @@ def test_bad_input_is_rejected() -> None:
         DischargeProfile(np.ones(24), np.zeros(7), np.array([1.0]), np.ones(2))
 
 
-def test_log_rank_statistic_of_the_tree_matches_lifelines(medpar: pd.DataFrame) -> None:
-    # The admission tree splits by scikit-survival's log-rank statistic; compare_survival is
-    # that statistic, checked against lifelines' logrank_test on medpar by admission type.
+def test_admission_tree_splits_on_the_largest_lifelines_log_rank(medpar: pd.DataFrame) -> None:
+    # The admission tree splits by the log-rank statistic (LeBlanc & Crowley 1993): its root
+    # split on medpar must be the candidate with the largest lifelines logrank_test statistic.
     durations, observed = _censor(medpar["los"].to_numpy(float), 4)
-    elective = (medpar["type"] == 1).to_numpy()
-    chisq, _ = compare_survival(Surv.from_arrays(observed, durations), elective.astype(int))
-    reference = logrank_test(durations[elective], durations[~elective],
-                             observed[elective], observed[~elective])
-    assert chisq == pytest.approx(reference.test_statistic, rel=1e-9)
-    assert chisq > 10  # elective and non-elective stays differ in medpar
+    kinds = np.where(medpar["type"] == 1, "elective", "emergency")
+    candidates = {"elective": (kinds == "elective").astype(float),
+                  "age80": medpar["age80"].to_numpy(float),
+                  "died": medpar["died"].to_numpy(float)}
+    statistic = {}
+    for name, flag in candidates.items():
+        on = flag == 1
+        statistic[name] = logrank_test(durations[on], durations[~on],
+                                       observed[on], observed[~on]).test_statistic
+    specs = [FeatureSpec(name=name, label=name, kind="flag") for name in candidates]
+    x = np.column_stack(list(candidates.values()))
+    groups = fit_stay_groups(x, durations, observed, kinds, specs, max_depth=1,
+                             min_samples_leaf=50, max_phases=1)
+    strongest = max(statistic, key=lambda k: statistic[k])
+    assert sorted(statistic.values())[-1] > 1.5 * sorted(statistic.values())[-2]
+    assert all(strongest in g.rule for g in groups.groups)
+
+
+def test_integrated_brier_score_matches_the_uncensored_formula(medpar: pd.DataFrame) -> None:
+    # Without censoring the IPCW weights are 1 and the Brier score at t is the mean of
+    # (1{T > t} - S(t))^2 (Graf et al. 1999, Stat Med 18:2529-2545); integrated over days 1..14
+    # by the trapezoid rule and divided by the span (scikit-survival's definition).
+    los = medpar["los"].to_numpy(float) - 0.5  # no ties with the evaluation days
+    rng = np.random.default_rng(8)
+    expected_days = los * rng.uniform(0.5, 1.5, los.size)
+    surv_days = np.exp(-np.arange(1.0, 15.0)[None, :] / expected_days[:, None])
+    every = np.ones(los.size, dtype=bool)
+    # One longer training stay keeps every test stay inside the censoring curve's support.
+    train = np.r_[los, los.max() + 1.0]
+    got = survival_metrics(every, los, surv_days, expected_days, expected_days,
+                           np.ones(train.size, dtype=bool), train)
+    days = np.arange(1.0, 15.0)
+    brier = np.mean(((los[:, None] > days[None, :]).astype(float) - surv_days) ** 2, axis=0)
+    expected = np.sum((brier[1:] + brier[:-1]) / 2) / (days[-1] - days[0])
+    assert got["ibs_1_14"] == pytest.approx(expected, rel=1e-9)
 
 
 def test_metrics_match_lifelines_and_scikit_learn(medpar: pd.DataFrame) -> None:
@@ -303,7 +330,6 @@ def test_metrics_match_lifelines_and_scikit_learn(medpar: pd.DataFrame) -> None:
         concordance_index(durations, expected_days, observed), abs=1e-9)
     assert got["r2_completed"] == pytest.approx(
         r2_score(durations[observed], mean_remaining[observed]), abs=1e-12)
-    assert 0 < got["ibs_1_14"] < 0.25
 
 
 def test_stay_groups_curves_and_shares(medpar: pd.DataFrame) -> None:
