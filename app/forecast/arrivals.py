@@ -30,12 +30,15 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
+from app.forecast.training_data import TooLittleHistory
 from app.state import UnitState
 from app.stats.arrivals import MIN_EXPOSURE, DailyRateModel, fit_daily_rate, hourly_profile
 from app.timeutil import localize
 
 MAX_LEAD = 28
 FIT_WINDOW_DAYS = 2 * 365
+# ``fit_daily_rate`` fits one effect per weekday: two weeks give each weekday two days.
+MIN_WINDOW_DAYS = 14
 ELECTIVE_WINDOW_DAYS = 26 * 7
 # Resolution at which the unit's fullness is read from the stays (minutes).
 OPEN_GRID_MINUTES = 15
@@ -145,6 +148,11 @@ def train_arrivals(state: UnitState) -> dict[str, Any]:
     emergency = stays["admission_type"] == "emergency"
     first, last = _window(state, FIT_WINDOW_DAYS)
     days, counts = _daily_counts(admitted[emergency], first, last)
+    if len(days) < MIN_WINDOW_DAYS:
+        raise TooLittleHistory(
+            f"unit {state.unit}: {max(len(days), 0)} whole day(s) of complete admissions "
+            f"(after the first discharge) before {state.as_of:%Y-%m-%d}; at least "
+            f"{MIN_WINDOW_DAYS} are needed to learn the weekday pattern of arrivals")
     profile = hourly_profile(admitted[emergency].dt.hour)
     excess = capacity_excess(state, first, last) if first <= last else None
     exposure = None
@@ -177,8 +185,11 @@ def train_arrivals(state: UnitState) -> dict[str, Any]:
 def _p_go_by_lead(state: UnitState) -> list[float]:
     """P(goes ahead | still open L days before the planned day), L = 0..MAX_LEAD.
 
-    Only bookings whose planned day has passed count. Beta(1, 1) smoothing keeps a lead with
-    few bookings away from 0 and 1.
+    Only bookings whose planned day has passed count. Each lead is shrunk towards the share
+    of all those bookings that went ahead, with the weight of two bookings (a Beta prior with
+    that mean): a lead with few bookings stays away from 0 and 1, and a lead no booking was
+    ever open at (bookings are rarely made four weeks ahead) takes the overall share rather
+    than an arbitrary one half.
     """
     b = state.bookings
     today = state.as_of.tz_convert(state.tz).date()
@@ -187,13 +198,14 @@ def _p_go_by_lead(state: UnitState) -> list[float]:
     planned = pd.to_datetime(past["planned_date"])
     booked_day = _local(past["booked_at"], state).dt.tz_localize(None).dt.normalize()
     cancelled_day = _local(past["cancelled_at"], state).dt.tz_localize(None).dt.normalize()
+    prior = (float(went.sum()) + 1.0) / (len(went) + 2.0)
     out = []
     for lead in range(MAX_LEAD + 1):
         start = planned - pd.Timedelta(days=lead)
         # Open at the start of that day: booked before it, not cancelled before it.
         open_then = (booked_day < start) & (cancelled_day.isna() | (cancelled_day >= start))
         n = int(open_then.sum())
-        out.append((float(went[open_then].sum()) + 1.0) / (n + 2.0))
+        out.append((float(went[open_then].sum()) + 2.0 * prior) / (n + 2.0))
     return out
 
 
