@@ -5,12 +5,17 @@ The log of the expected count on day d is
 
     log mu_d = b0 + b_weekday(d) + c1 cos(2 pi doy/365.25) + c2 sin(2 pi doy/365.25),
 
-with Monday as the weekday reference. The seasonal pair needs a window of two complete annual
-cycles (the same rule as statsmodels' ``seasonal_decompose``, which refuses fewer than two
-complete cycles): from one cycle, or one and a bit, the annual curve is confounded with any
-change of level in the meantime (on the demo's critical care unit, the months before its bed
-count rose: validated on the 91 days before each of the seven retrainings of its 2026
-backtest, the fit without season was the better at six).
+with Monday as the weekday reference. Whether the seasonal pair and a local level help is a
+question for held-out days, not for a rule on the history's span: :func:`choose_demand_terms`
+replays the last weeks of the history (rolling origin: fit on the days before each origin,
+score the week after it) and keeps the terms with the best predictive log score. From one
+annual cycle, or one and a bit, the annual curve is confounded with any change of level in
+the meantime, which is exactly what that comparison catches.
+
+A local level follows recent demand: the ratio of the admissions seen to those the model
+expected, over the past days weighted by a half-life and shrunk towards 1 by a week's worth of
+expected admissions (:func:`level_multiplier`); the half-life (or none) is chosen by the same
+rolling-origin comparison.
 
 Where a day was only partly open to admissions (a full unit turns emergencies away, and those
 leave no record), its count is the day's demand thinned to the open part:
@@ -41,9 +46,22 @@ import numpy as np
 import numpy.typing as npt
 from scipy import stats
 
-__all__ = ["DailyRateModel", "fit_daily_rate", "hourly_profile"]
+__all__ = ["DailyRateModel", "DemandChoice", "choose_demand_terms", "fit_daily_rate",
+           "hourly_profile", "level_multiplier"]
 
-SEASON_MIN_DAYS = 2 * 365
+# The annual pair is tried (as a candidate on held-out weeks) from one full cycle of history
+# on; below it cannot be estimated. Without such a comparison it is fitted only from two full
+# cycles (the rule of statsmodels' seasonal_decompose, which refuses fewer than two).
+SEASON_MIN_DAYS = 365
+SEASON_UNCHECKED_DAYS = 2 * 365
+# Local-level half-lives tried (days; None: no local level) and the prior's weight in days of
+# expected admissions. Common practice for exponential smoothing of a rate, no source.
+LEVEL_HALF_LIVES: tuple[float | None, ...] = (None, 14.0, 28.0, 56.0)
+LEVEL_PRIOR_DAYS = 7.0
+# Rolling origins: one a week over the last VALIDATION_ORIGINS weeks, each scoring the week
+# after it (the days a forecast faces).
+VALIDATION_ORIGINS = 8
+VALIDATION_HORIZON = 7
 OVERDISPERSION_LEVEL = 0.05
 # Days open to admissions for less than this share carry almost no information on the demand
 # (their count is a small slice of it); they are left out of the fit. Common practice, no source.
@@ -81,6 +99,8 @@ class DailyRateModel:
         Mean observed count per fitted day.
     exposure_mean : float
         Mean share of the fitted days open to admissions (1 without exposures).
+    level_half_life : float or None
+        Half-life in days of the local level applied at forecast time (None: no local level).
     """
 
     coefficients: tuple[float, ...]
@@ -90,6 +110,7 @@ class DailyRateModel:
     overdispersion_p: float
     mean_count: float = field(default=0.0)
     exposure_mean: float = field(default=1.0)
+    level_half_life: float | None = field(default=None)
 
     def mean(self, days: Sequence[date]) -> npt.NDArray[np.float64]:
         """Expected count on each of ``days``."""
@@ -106,7 +127,7 @@ class DailyRateModel:
         return {"coefficients": list(self.coefficients), "seasonal": self.seasonal,
                 "alpha": self.alpha, "n_days": self.n_days,
                 "overdispersion_p": self.overdispersion_p, "mean_count": self.mean_count,
-                "exposure_mean": self.exposure_mean}
+                "exposure_mean": self.exposure_mean, "level_half_life": self.level_half_life}
 
     @classmethod
     def from_dict(cls, data: Mapping[str, Any]) -> DailyRateModel:
@@ -115,11 +136,28 @@ class DailyRateModel:
                    alpha=None if data["alpha"] is None else float(data["alpha"]),
                    n_days=int(data["n_days"]), overdispersion_p=float(data["overdispersion_p"]),
                    mean_count=float(data.get("mean_count", 0.0)),
-                   exposure_mean=float(data.get("exposure_mean", 1.0)))
+                   exposure_mean=float(data.get("exposure_mean", 1.0)),
+                   level_half_life=(None if data.get("level_half_life") is None
+                                    else float(data["level_half_life"])))
+
+
+def _checked(days: Sequence[date], counts: npt.ArrayLike, exposure: npt.ArrayLike | None
+             ) -> tuple[npt.NDArray[np.float64], npt.NDArray[np.float64]]:
+    y = np.asarray(counts, dtype=float)
+    if y.shape != (len(days),):
+        raise ValueError(f"counts: expected shape ({len(days)},), got {y.shape}")
+    if np.any(y < 0) or np.any(y != np.round(y)):
+        raise ValueError("counts: must be whole numbers >= 0")
+    open_share = np.ones(len(days)) if exposure is None else np.asarray(exposure, dtype=float)
+    if open_share.shape != (len(days),) or np.any(~np.isfinite(open_share)) \
+            or np.any(open_share < 0) or np.any(open_share > 1):
+        raise ValueError(f"exposure: needs one share in 0..1 per day ({len(days)})")
+    return y, open_share
 
 
 def fit_daily_rate(days: Sequence[date], counts: npt.ArrayLike,
-                   exposure: npt.ArrayLike | None = None) -> DailyRateModel:
+                   exposure: npt.ArrayLike | None = None, *, seasonal: bool | None = None,
+                   level_half_life: float | None = None) -> DailyRateModel:
     """Fit the daily count model.
 
     Parameters
@@ -130,21 +168,19 @@ def fit_daily_rate(days: Sequence[date], counts: npt.ArrayLike,
     exposure : array_like of float, shape (len(days),), optional
         Share of each day open to admissions (0..1; default 1). Days open less than
         ``MIN_EXPOSURE`` are left out; the fitted rates are the demand of a wholly open day.
+    seasonal : bool, optional
+        Fit the annual pair; default: when the window spans ``SEASON_UNCHECKED_DAYS`` or more
+        (pass the choice of :func:`choose_demand_terms` instead where there is one).
+    level_half_life : float, optional
+        Stored with the model for the forecast's local level (:func:`level_multiplier`).
 
     Returns
     -------
     DailyRateModel
     """
-    y = np.asarray(counts, dtype=float)
-    if y.shape != (len(days),):
-        raise ValueError(f"counts: expected shape ({len(days)},), got {y.shape}")
-    if np.any(y < 0) or np.any(y != np.round(y)):
-        raise ValueError("counts: must be whole numbers >= 0")
-    open_share = np.ones(len(days)) if exposure is None else np.asarray(exposure, dtype=float)
-    if open_share.shape != (len(days),) or np.any(~np.isfinite(open_share)) \
-            or np.any(open_share < 0) or np.any(open_share > 1):
-        raise ValueError(f"exposure: needs one share in 0..1 per day ({len(days)})")
-    seasonal = len(days) >= SEASON_MIN_DAYS  # the window's span, closed days included
+    y, open_share = _checked(days, counts, exposure)
+    if seasonal is None:
+        seasonal = len(days) >= SEASON_UNCHECKED_DAYS  # the window's span, closed days included
     keep = open_share >= MIN_EXPOSURE
     days = [d for d, k in zip(days, keep, strict=True) if k]
     y, open_share = y[keep], open_share[keep]
@@ -156,7 +192,7 @@ def fit_daily_rate(days: Sequence[date], counts: npt.ArrayLike,
     if y.sum() == 0:
         coefficients = np.r_[-30.0, np.zeros(x.shape[1] - 1)]
         return DailyRateModel(tuple(coefficients), seasonal, None, len(days), 1.0, 0.0,
-                              float(open_share.mean()))
+                              float(open_share.mean()), level_half_life)
     # Imported here: statsmodels takes seconds to import and only fitting needs it, so
     # each web server worker starts without it.
     import statsmodels.api as sm
@@ -172,14 +208,169 @@ def fit_daily_rate(days: Sequence[date], counts: npt.ArrayLike,
     p_value = float(stats.t.sf(slope / se, df=len(y) - 1)) if se > 0 else 1.0
     if slope <= 0 or p_value >= OVERDISPERSION_LEVEL:
         return DailyRateModel(tuple(float(c) for c in poisson.params), seasonal, None, len(days),
-                              p_value, float(y.mean()), float(open_share.mean()))
+                              p_value, float(y.mean()), float(open_share.mean()),
+                              level_half_life)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         nb = sm.NegativeBinomial(y, x, loglike_method="nb2", offset=offset).fit(
             start_params=np.r_[poisson.params, slope], disp=0, maxiter=200)
     params = np.asarray(nb.params, dtype=float)
     return DailyRateModel(tuple(float(c) for c in params[:-1]), seasonal, float(params[-1]),
-                          len(days), p_value, float(y.mean()), float(open_share.mean()))
+                          len(days), p_value, float(y.mean()), float(open_share.mean()),
+                          level_half_life)
+
+
+def level_multiplier(observed: npt.ArrayLike, expected: npt.ArrayLike,
+                     half_life: float | None, prior_days: float = LEVEL_PRIOR_DAYS) -> float:
+    """Recent demand relative to the model: the local level that multiplies its rates.
+
+    Parameters
+    ----------
+    observed, expected : array_like, shape (n,)
+        Admissions seen and expected (the model's mean times the open share) on consecutive
+        past days, the last entry being the latest day.
+    half_life : float or None
+        Weight 0.5 ** (age / half_life) for a day ``age`` days before the latest; None: 1.
+    prior_days : float
+        The ratio is shrunk towards 1 by this many days of expected admissions (a gamma
+        prior with mean 1), so a quiet week on a small unit moves the level only a little.
+
+    Returns
+    -------
+    float
+        (sum w y + P) / (sum w e + P) with P = prior_days x mean(e); 1 without data.
+    """
+    y = np.asarray(observed, dtype=float)
+    e = np.asarray(expected, dtype=float)
+    if y.shape != e.shape or y.ndim != 1:
+        raise ValueError(f"observed, expected: need the same 1-D shape, got {y.shape}, {e.shape}")
+    if half_life is None or y.size == 0 or not np.any(e > 0):
+        return 1.0
+    if not half_life > 0:
+        raise ValueError(f"half_life: must be > 0 or None, got {half_life!r}")
+    age = np.arange(y.size - 1, -1, -1, dtype=float)
+    w = 0.5 ** (age / half_life)
+    prior = prior_days * float(e.mean())
+    return float((w @ y + prior) / (w @ e + prior))
+
+
+@dataclass(frozen=True)
+class DemandChoice:
+    """The demand terms chosen on held-out weeks, and the evidence.
+
+    Attributes
+    ----------
+    seasonal : bool
+    level_half_life : float or None
+    scores : tuple of (bool, float or None, float)
+        Each candidate (seasonal, half-life) with its mean log score per held-out day
+        (higher is better).
+    n_origins : int
+        Weekly origins scored (0: too little history to compare; the defaults stand).
+    """
+
+    seasonal: bool
+    level_half_life: float | None
+    scores: tuple[tuple[bool, float | None, float], ...]
+    n_origins: int
+
+    def to_dict(self) -> dict[str, Any]:
+        return {"seasonal": self.seasonal, "level_half_life": self.level_half_life,
+                "n_origins": self.n_origins,
+                "scores": [{"seasonal": s, "level_half_life": h, "log_score": v}
+                           for s, h, v in self.scores]}
+
+
+def _poisson_means(days: Sequence[date], y: npt.NDArray[np.float64],
+                   open_share: npt.NDArray[np.float64], seasonal: bool,
+                   ahead: Sequence[date]) -> tuple[npt.NDArray[np.float64],
+                                                   npt.NDArray[np.float64]] | None:
+    """The Poisson GLM's demand on the fitted days and on ``ahead`` (None if it cannot fit)."""
+    import statsmodels.api as sm
+
+    keep = open_share >= MIN_EXPOSURE
+    if keep.sum() < 14 or y[keep].sum() == 0:
+        return None
+    fit_days = [d for d, k in zip(days, keep, strict=True) if k]
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        model = sm.GLM(y[keep], _design(fit_days, seasonal), family=sm.families.Poisson(),
+                       offset=np.log(open_share[keep])).fit()
+    params = np.asarray(model.params, dtype=float)
+    return (np.exp(_design(list(days), seasonal) @ params),
+            np.exp(_design(list(ahead), seasonal) @ params))
+
+
+def choose_demand_terms(days: Sequence[date], counts: npt.ArrayLike,
+                        exposure: npt.ArrayLike | None = None, *, alpha: float | None = None,
+                        origins: int = VALIDATION_ORIGINS, horizon: int = VALIDATION_HORIZON,
+                        half_lives: Sequence[float | None] = LEVEL_HALF_LIVES
+                        ) -> DemandChoice:
+    """Choose the annual term and the local level's half-life by rolling-origin validation.
+
+    For each weekly origin over the last ``origins`` weeks, the weekday (and, as a candidate,
+    seasonal) Poisson GLM is fitted on the days before it; each half-life's level is computed
+    from those days' admissions against the fit; the ``horizon`` days after the origin are
+    scored by their predictive log-probability (Poisson, or NB2 with dispersion ``alpha``,
+    mean x open share x level). The candidate with the highest mean score wins; ties keep the
+    simpler one (no season, no level). The seasonal candidate needs ``SEASON_MIN_DAYS`` of
+    history before every origin.
+
+    Parameters
+    ----------
+    days, counts, exposure
+        As in :func:`fit_daily_rate`: every day of the window, in order.
+    alpha : float, optional
+        NB2 dispersion of the full-window fit, for the scores.
+    origins, horizon : int
+    half_lives : sequence of float or None
+
+    Returns
+    -------
+    DemandChoice
+    """
+    y, open_share = _checked(days, counts, exposure)
+    n = len(days)
+    usable = max(0, (n - 28) // horizon)  # keep four weeks before the first origin
+    n_origins = min(origins, usable)
+    seasonal_ok = n - n_origins * horizon >= SEASON_MIN_DAYS
+    if n_origins < 2:
+        return DemandChoice(False, None, (), 0)
+    candidates = [(s, h) for s in ((False, True) if seasonal_ok else (False,))
+                  for h in half_lives]
+    total = dict.fromkeys(candidates, 0.0)
+    scored_days = 0
+    for k in range(n_origins, 0, -1):
+        cut = n - k * horizon
+        ahead = slice(cut, cut + horizon)
+        test = open_share[ahead] >= MIN_EXPOSURE
+        if not test.any():
+            continue
+        scored_days += int(test.sum())
+        for seasonal in {s for s, _ in candidates}:
+            means = _poisson_means(days[:cut], y[:cut], open_share[:cut], seasonal,
+                                   days[ahead])
+            for h in {h for s, h in candidates if s == seasonal}:
+                if means is None:
+                    total[(seasonal, h)] += -1e6
+                    continue
+                fitted, forward = means
+                level = level_multiplier(y[:cut], fitted * open_share[:cut], h)
+                mu = np.maximum(forward * open_share[ahead] * level, 1e-9)[test]
+                observed = y[ahead][test]
+                if alpha is None:
+                    log_p = stats.poisson.logpmf(observed, mu)
+                else:
+                    size = 1.0 / alpha
+                    log_p = stats.nbinom.logpmf(observed, size, size / (size + mu))
+                total[(seasonal, h)] += float(np.sum(log_p))
+    if scored_days == 0:
+        return DemandChoice(False, None, (), 0)
+    scores = tuple((s, h, total[(s, h)] / scored_days) for s, h in candidates)
+    # Highest mean score; the candidates are listed simplest first, so max keeps the
+    # simplest among equals.
+    best = max(range(len(scores)), key=lambda i: (scores[i][2], -i))
+    return DemandChoice(scores[best][0], scores[best][1], scores, n_origins)
 
 
 def hourly_profile(hours: npt.ArrayLike, *, prior: float = 1.0) -> npt.NDArray[np.float64]:
