@@ -32,7 +32,14 @@ import pandas as pd
 
 from app.forecast.training_data import TooLittleHistory
 from app.state import UnitState
-from app.stats.arrivals import MIN_EXPOSURE, DailyRateModel, fit_daily_rate, hourly_profile
+from app.stats.arrivals import (
+    MIN_EXPOSURE,
+    DailyRateModel,
+    choose_demand_terms,
+    fit_daily_rate,
+    hourly_profile,
+    level_multiplier,
+)
 from app.timeutil import localize
 
 MAX_LEAD = 28
@@ -164,13 +171,16 @@ def train_arrivals(state: UnitState) -> dict[str, Any]:
             exposure = by_day
         else:  # too few open days to fit on: the admitted counts as they are, no ceiling
             excess, profile = None, hourly_profile(admitted[emergency].dt.hour)
-    rate = fit_daily_rate(days, counts, exposure=exposure)
+    choice = choose_demand_terms(days, counts, exposure=exposure)
+    rate = fit_daily_rate(days, counts, exposure=exposure, seasonal=choice.seasonal,
+                          level_half_life=choice.level_half_life)
     elective = ~emergency
     return {
         "emergency": {
             "rate": rate.to_dict(),
             "hour_profile": profile.tolist(),
             "window": [first.isoformat(), last.isoformat()],
+            "terms": choice.to_dict(),
         },
         "capacity": {"excess_beds": excess,
                      "open_share": None if exposure is None else float(np.mean(exposure))},
@@ -240,6 +250,52 @@ def _unbooked_rates(state: UnitState) -> list[list[float]]:
 
 def emergency_rate(arrivals: Mapping[str, Any]) -> DailyRateModel:
     return DailyRateModel.from_dict(arrivals["emergency"]["rate"])
+
+
+# Past days the local level reads, in half-lives: their weights fall below 0.4%.
+LEVEL_LOOKBACK_HALF_LIVES = 8
+
+
+def emergency_means(state: UnitState, arrivals: Mapping[str, Any], span: list[date]
+                    ) -> list[float]:
+    """Expected emergency demand on each local day of ``span`` (the first is today), as of
+    ``state.as_of``.
+
+    The trained daily rate, times the local level (the admissions of the recent past against
+    what the rate expected on their open share of each day, up to yesterday: it follows the
+    demand since training), and for today also the admissions already seen since midnight
+    where the counts are overdispersed: under the negative binomial a day's rate is
+    gamma-distributed, and after n admissions where f of the day's expected demand has passed
+    its posterior mean is mu (r + n) / (r + f mu), with r the size (the conjugate update).
+    """
+    rate = emergency_rate(arrivals)
+    means = rate.mean(span)
+    if not span:
+        return []
+    today = span[0]
+    stays = state.stays
+    emergency = stays.loc[stays["admission_type"] == "emergency", "admitted_at"]
+    admitted = _local(emergency.loc[emergency <= state.as_of], state)
+    profile = np.asarray(arrivals["emergency"]["hour_profile"], dtype=float)
+    if rate.level_half_life is not None:
+        lookback = int(LEVEL_LOOKBACK_HALF_LIVES * rate.level_half_life)
+        first, last = _window(state, lookback)
+        if first <= last:
+            days, counts = _daily_counts(admitted, first, last)
+            expected = rate.mean(days)
+            excess = excess_beds(arrivals)
+            if excess is not None:
+                by_day, _ = open_shares(state, first, last, excess, profile)
+                expected = expected * by_day
+            means = means * level_multiplier(counts, expected, rate.level_half_life)
+    if rate.size is not None:
+        now = state.as_of.tz_convert(state.tz)
+        seen = int((admitted.dt.date == today).sum())
+        hour = now.hour + now.minute / 60.0
+        passed = float(profile[: now.hour].sum() + profile[now.hour] * (hour - now.hour))
+        mu = float(means[0])
+        means[0] = mu * (rate.size + seen) / (rate.size + passed * mu)
+    return [float(m) for m in means]
 
 
 def excess_beds(arrivals: Mapping[str, Any]) -> int | None:

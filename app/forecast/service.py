@@ -18,7 +18,13 @@ import numpy as np
 import pandas as pd
 from sqlalchemy.orm import Session
 
-from app.forecast.arrivals import MAX_LEAD, emergency_rate, excess_beds, train_arrivals
+from app.forecast.arrivals import (
+    MAX_LEAD,
+    emergency_means,
+    emergency_rate,
+    excess_beds,
+    train_arrivals,
+)
 from app.forecast.los import LosModel, predict_stays, train_los
 from app.forecast.models import newest_model, save_model
 from app.state import UnitState, load_state
@@ -194,7 +200,7 @@ def forecast_backdrop(state: UnitState, record: ModelRecord, *, days: int = DEFA
     today = state.as_of.tz_convert(state.tz).date()
     span = [today + timedelta(days=d) for d in range((local_days[-1] - today).days + 1)]
     rate = emergency_rate(arrivals)
-    emergency = _hourly_stream("emergency", state, today, list(rate.mean(span)),
+    emergency = _hourly_stream("emergency", state, today, emergency_means(state, arrivals, span),
                                arrivals["emergency"]["hour_profile"], rate.size,
                                _newcomer_stay(los, "emergency"))
     unbooked_table = arrivals["elective"]["unbooked_by_weekday_lead"]
