@@ -206,8 +206,11 @@ def run_training(url: str, run_id: int) -> int:
     except Exception as exc:
         stop.set()
         beat.join()
+        from app.forecast.training_data import TooLittleHistory
+
+        why = str(exc) if isinstance(exc, TooLittleHistory) else f"{type(exc).__name__}: {exc}"
         _update(url, run_id, status="failed", active_unit=None, finished_at=_now(),
-                stage="", message=f"{type(exc).__name__}: {exc}"[:500])
+                stage="", message=why[:500])
         return 1
     stop.set()
     beat.join()

@@ -6,6 +6,9 @@ Every timestamp column is ``datetime64[ns, UTC]``. The rules (DATA_CONTRACT.md, 
   or ``discharged_at > t``; a discharge after ``as_of`` is unknown, so it is NaT here;
 - observations count only with ``observed_at <= as_of`` and ``recorded_at <= as_of``; each
   (stay, observed_at, name) takes its latest value recorded by the instant asked about;
+  entries with the same ``recorded_at`` count in the order of the frame's rows, which
+  ``load_state`` gives in the order they were entered (a correction within the clock's
+  resolution supersedes the value before it);
 - covariates of a stay are known from admission;
 - bookings count with ``booked_at <= as_of``; a cancellation after ``as_of`` is unknown.
 """

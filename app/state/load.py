@@ -39,9 +39,11 @@ def _observations(session: Session, unit: str, as_of: datetime, *,
                     Observation.observed_at <= as_of, Observation.recorded_at <= as_of))
     if current_only:
         query = query.where((Stay.discharged_at.is_(None)) | (Stay.discharged_at > as_of))
+    # Entries with the same recorded_at follow in the order they were made (revision): the
+    # frames' rule takes the last row of each instant as its latest value.
     rows = session.execute(query.order_by(
         Observation.stay_id, Observation.name, Observation.observed_at,
-        Observation.recorded_at)).all()
+        Observation.recorded_at, Observation.revision)).all()
     observations = pd.DataFrame(rows, columns=OBSERVATION_COLUMNS)
     observations["observed_at"] = _utc_column(list(observations["observed_at"]))
     observations["recorded_at"] = _utc_column(list(observations["recorded_at"]))

@@ -151,11 +151,15 @@ class CensusRow(Base):
 
 
 class Observation(Base):
-    """A timed score or flag. Append-only: a correction is a new row, later ``recorded_at``."""
+    """A timed score or flag. Append-only: a correction is a new row, recorded later or, at
+    the same ``recorded_at`` (a clock read to the second, or a fixed replay clock), with the
+    next ``revision``. The latest value is the one with the latest (recorded_at, revision)."""
 
     __tablename__ = "observation"
     __table_args__ = (
-        UniqueConstraint("stay_id", "observed_at", "name", "recorded_at"),
+        # The revision is part of the key so that two writers entering the same value at
+        # once still collide here (one is stored), while a correction gets the next number.
+        UniqueConstraint("stay_id", "observed_at", "name", "recorded_at", "revision"),
         Index("ix_observation_stay_name", "stay_id", "name"),
     )
 
@@ -165,6 +169,7 @@ class Observation(Base):
     name: Mapped[str] = mapped_column(String(64))
     value: Mapped[float] = mapped_column(Float)
     recorded_at: Mapped[datetime]
+    revision: Mapped[int] = mapped_column(Integer, default=0, server_default="0")
     batch_id: Mapped[int | None] = mapped_column(ForeignKey("import_batch.id"))
 
 

@@ -315,12 +315,12 @@ def test_observation_rules(unit_db, row, column, why) -> None:
     assert problem.line == 2 and why in problem.why
 
 
-def test_observation_same_key_other_value_is_refused(unit_db: str) -> None:
+def test_observation_same_key_other_value_is_a_correction(unit_db: str) -> None:
+    """A later entry with the same recorded_at supersedes (tests/reliability has the rule)."""
     run(unit_db, "stays", GOOD_STAYS)
     run(unit_db, "observations", csv_bytes(OBS_HEADER, "S-1,2026-03-02T07:00,sofa,9,"))
-    problem = _only(refused(unit_db, "observations",
-                            csv_bytes(OBS_HEADER, "S-1,2026-03-02T07:00,sofa,7,")), "value")
-    assert "later recorded_at" in problem.why
+    assert run(unit_db, "observations",
+               csv_bytes(OBS_HEADER, "S-1,2026-03-02T07:00,sofa,7,")).inserted == 1
 
 
 # bookings -------------------------------------------------------------------------------------

@@ -56,7 +56,7 @@ def build_files(stays, bookings, cut: float | None) -> dict[str, bytes]:
         outcome = "home" if dis is not None else ""
         stay_rows.append(f"S-{i},U-T,{ts(adm)},{'' if dis is None else ts(dis)},{kind},{outcome},{age}")
         # The importer refuses two values for one stay, time and name recorded at the same
-        # instant (a correction needs a later recorded_at): keep the first of such a pair.
+        # instant in one file (its lines have no order of entry): keep the first of a pair.
         recorded_pairs: set[tuple[int, int]] = set()
         for off, value, delay, correction in observations:
             observed = adm + off
