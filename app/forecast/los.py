@@ -55,6 +55,12 @@ import numpy as np
 import numpy.typing as npt
 import pandas as pd
 
+from app.forecast.training_data import (
+    KnownColumnsOnly,
+    TooLittleHistory,
+    require_history,
+    screen_scores,
+)
 from app.state.frames import UnitState, latest_observations
 from app.stats.stay_groups import StayGroups, fit_stay_groups, round_up_to_hours
 from app.stats.survival_tree import (
@@ -325,6 +331,19 @@ def _stay_ends(stays: pd.DataFrame, as_of_ns: int) -> tuple[IntArray, IntArray,
     return admitted, end, ended
 
 
+def extract_start_ns(stays: pd.DataFrame, as_of_ns: int) -> int | None:
+    """When the extract's record of stays begins: its first discharge known at ``as_of_ns``.
+
+    An extract of stays holds those discharged since some day plus the stays then in
+    progress; stays admitted before its first recorded discharge are only the ones that
+    lasted until then (left truncation), the same reading as the arrivals' window
+    (``app.forecast.arrivals._window``). None when no stay has ended yet.
+    """
+    discharged = _ns(stays["discharged_at"].dropna())
+    discharged = discharged[discharged <= as_of_ns]
+    return int(discharged.min()) if discharged.size else None
+
+
 def observation_names(state: UnitState) -> list[str]:
     """Observation names recorded for the unit's stays, sorted."""
     if state.observations.empty:
@@ -335,7 +354,13 @@ def observation_names(state: UnitState) -> list[str]:
 def build_landmarks(state: UnitState, *, landmark_clock: time = LANDMARK_CLOCK,
                     names: Sequence[str] | None = None) -> Landmarks:
     """Landmarks of every stay of the state: each ``landmark_clock`` local time it was in the
-    unit, up to ``state.as_of`` (stays still in are censored there, never dropped)."""
+    unit from the extract's start (:func:`extract_start_ns`) up to ``state.as_of`` (stays still
+    in are censored there, never dropped).
+
+    Before the extract's start only the stays that lasted into it are on record, so a
+    landmark there would see survivors only; from the start on, every stay in the unit is
+    seen, whenever it was admitted, and a landmark conditions on being in the unit anyway.
+    """
     stays = state.stays.reset_index(drop=True)
     names = observation_names(state) if names is None else list(names)
     as_of_ns = int(_ns([state.as_of])[0])
@@ -350,7 +375,9 @@ def build_landmarks(state: UnitState, *, landmark_clock: time = LANDMARK_CLOCK,
                      state.tz)
     # A stay is in at landmark s when admitted <= s < end (present means discharged after s);
     # a landmark at the cut-off itself has no time at risk left.
-    first = np.searchsorted(axis.landmark_ns, admitted, side="left")
+    start_ns = extract_start_ns(stays, as_of_ns)
+    seen_from = admitted if start_ns is None else np.maximum(admitted, start_ns)
+    first = np.searchsorted(axis.landmark_ns, seen_from, side="left")
     last = np.searchsorted(axis.landmark_ns, end, side="left")
     counts = np.maximum(last - first, 0)
     stay_index = np.repeat(np.arange(len(stays)), counts)
@@ -818,11 +845,13 @@ def predict_stays(model: LosModel | Mapping[str, Any], state: UnitState,
 
 @dataclass(frozen=True, eq=False)
 class _StayTable:
-    """Whole stays as known at a cut-off: length so far and whether ended."""
+    """Whole stays as known at a cut-off: length so far, whether ended, and the days already
+    spent when the extract began (0 for stays admitted after it; left truncation)."""
 
     index: IntArray
     days: FloatArray
     ended: npt.NDArray[np.bool_]
+    entry: FloatArray
 
 
 def _stays_at(stays: pd.DataFrame, cutoff_ns: int) -> _StayTable:
@@ -832,7 +861,11 @@ def _stays_at(stays: pd.DataFrame, cutoff_ns: int) -> _StayTable:
     ended = stays["discharged_at"].notna().to_numpy() & (discharged <= cutoff_ns)
     end = np.where(ended, discharged, cutoff_ns)
     idx = np.flatnonzero(keep)
-    return _StayTable(idx.astype(np.int64), (end[idx] - admitted[idx]) / NS_PER_DAY, ended[idx])
+    days = (end[idx] - admitted[idx]) / NS_PER_DAY
+    start_ns = extract_start_ns(stays, cutoff_ns)
+    entry = (np.zeros(idx.size) if start_ns is None
+             else np.clip((start_ns - admitted[idx]) / NS_PER_DAY, 0.0, days))
+    return _StayTable(idx.astype(np.int64), days, ended[idx], entry)
 
 
 def _stay_hash_half(stay_ids: npt.ArrayLike) -> npt.NDArray[np.bool_]:
@@ -941,9 +974,9 @@ def _ensemble_x(x: npt.NDArray[np.float32], weekday: FloatArray) -> npt.NDArray[
 def _boosted(max_iter: int) -> Any:
     from sklearn.ensemble import HistGradientBoostingRegressor
 
-    return HistGradientBoostingRegressor(
+    return KnownColumnsOnly(HistGradientBoostingRegressor(
         loss="poisson", learning_rate=0.1, max_iter=max_iter, max_leaf_nodes=15,
-        min_samples_leaf=200, l2_regularization=1.0, early_stopping=False, random_state=0)
+        min_samples_leaf=200, l2_regularization=1.0, early_stopping=False, random_state=0))
 
 
 def _one_thread() -> Any:
@@ -1003,7 +1036,9 @@ def _select_groups(design: Design, stays: pd.DataFrame, cutoff_ns: int
     v_ns = int(cutoff_ns - val_days * NS_PER_DAY)
     held = _stay_hash_half(stays["stay_id"].to_numpy())
     fit = _stays_at(stays, v_ns)
-    fit_keep = ~held[fit.index]
+    # Stays admitted before the extract began are left out of the tree, as in fitting it
+    # (``fit_stay_groups``: the log-rank tree has no delayed entry).
+    fit_keep = ~held[fit.index] & (fit.entry == 0)
     later = _stays_at(stays, cutoff_ns)
     val_keep = held[later.index] & (admitted[later.index] > v_ns)
     x_all = _admission_x(design, stays)
@@ -1046,7 +1081,7 @@ def _fit_groups(design: Design, stays: pd.DataFrame, cutoff_ns: int, params: Map
     return fit_stay_groups(x, table.days, table.ended, kinds, design.admission_features,
                            max_depth=int(params["max_depth"]),
                            min_samples_leaf=max(30, int(params["leaf_share"] * table.index.size)),
-                           rng=seed)
+                           rng=seed, entry=table.entry)
 
 
 # ---------------------------------------------------------------------------------------------
@@ -1103,7 +1138,10 @@ def survival_metrics(event: npt.ArrayLike, remaining: npt.ArrayLike, surv_days: 
         concordance = nan
     usable = t < y_train["time"].max()
     ibs = nan
-    if usable.any() and t[usable].max() > EVAL_DAYS[-1] and t[usable].min() < EVAL_DAYS[0]:
+    # The censoring weights need an ended stay in each set (a unit with few stays may have
+    # none in its test period).
+    if (usable.any() and t[usable].max() > EVAL_DAYS[-1] and t[usable].min() < EVAL_DAYS[0]
+            and d[usable].any() and train_d.any()):
         y_test = Surv.from_arrays(d[usable], t[usable])
         ibs = float(integrated_brier_score(y_train, y_test, surv_days[usable], EVAL_DAYS))
     y = t[d]
@@ -1193,7 +1231,9 @@ def _test_metrics(model: LosModel, train_lm: Landmarks, train_rows: IntervalRows
                             train_event, train_remaining)
     cutoff_ns = int(train_lm.end_ns.max())
     table = _stays_at(train_lm.stays, cutoff_ns)
-    km = kaplan_meier(round_up_to_hours(table.days), table.ended)
+    shown = round_up_to_hours(table.days)
+    km = kaplan_meier(shown, table.ended,
+                      entry=np.minimum(np.floor(np.round(table.entry * 24, 6)) / 24, shown))
     baseline = survival_metrics(event, remaining, *_km_summaries(km, test_lm.days_in),
                                 train_event, train_remaining)
     out["tree"], out["km"] = tree, baseline
@@ -1279,9 +1319,8 @@ def train_los(state: UnitState, *, test_days: float | None = None,
     names = observation_names(state)
     until_ns = int(_ns([state.as_of])[0])
     full = build_landmarks(state, landmark_clock=landmark_clock, names=names)
-    if full.size == 0 or not full.ended.any():
-        raise ValueError(f"unit {state.unit}: no ended stay known at {state.as_of}; "
-                         "import the unit's history first")
+    require_history(state.unit, int(np.unique(full.stay_index[full.ended]).size),
+                    _iso(until_ns, tz))
     first_ns = int(_ns(state.stays["admitted_at"]).min())
     window_days = (until_ns - first_ns) / NS_PER_DAY
     if test_days is None:
@@ -1289,8 +1328,11 @@ def train_los(state: UnitState, *, test_days: float | None = None,
     test_from = int(until_ns - float(test_days) * NS_PER_DAY) if evaluate else until_ns
     train_lm = full.censored_at(test_from) if evaluate else full
     if train_lm.size == 0 or not train_lm.ended.any():
-        raise ValueError(f"unit {state.unit}: no stay ended before the test period "
-                         f"({_iso(test_from, tz)}); need a longer history")
+        raise TooLittleHistory(f"unit {state.unit}: no stay ended before the test period "
+                               f"({_iso(test_from, tz)}); need a longer history")
+    # Scores are screened on the rows the tested model learns from, so the stored model has
+    # the same features as the one whose test metrics are reported.
+    names, left_out = screen_scores(train_lm.observed, train_lm.stay_index, names)
 
     # 1. Sizes by validation inside the training period (split by stay and by time).
     split = _validation_split(train_lm, test_from, state.census_time, tz, names, rng)
@@ -1305,7 +1347,7 @@ def train_los(state: UnitState, *, test_days: float | None = None,
         make_design(train_lm, interval_rows(train_lm, state.census_time, tz, rng=rng,
                                             max_rows=MAX_VALIDATION_ROWS), names),
         state.stays, test_from)
-    metrics: dict[str, Any] = {}
+    metrics: dict[str, Any] = {"left_out": left_out}
 
     # 2. The model as known at the test start, scored on the test period.
     if evaluate:
@@ -1402,4 +1444,6 @@ def format_metrics(metrics: Mapping[str, Any]) -> str:
     if "train_seconds" in metrics:
         lines.append(f"trained in {metrics['train_seconds']:.1f} s "
                      f"on {metrics['training_rows']} rows")
+    for left in metrics.get("left_out", []):
+        lines.append(f"left out {left['name']}: {left['why']}")
     return "\n".join(lines)
