@@ -46,6 +46,10 @@ class Settings(BaseSettings):
     signin_lockout_minutes: int = 15
     # Set when a TLS proxy is in front: cookies then carry the Secure attribute.
     secure_cookies: bool = False
+    # Time limits (app/time_limits.py): a web request, and a long command (`morrow plan`,
+    # `morrow forecast`), still computing after this many seconds is stopped with a message.
+    request_seconds: float = 60.0
+    command_seconds: float = 1800.0
     # A fixed "now" for the page and API (ISO 8601), for replaying a past morning in
     # training sessions and tests; empty: the real time.
     now: str = ""
@@ -59,6 +63,13 @@ class Settings(BaseSettings):
         except Exception as exc:  # zoneinfo raises several kinds
             raise ValueError(f"MORROW_TIMEZONE={name!r} is not an IANA time zone name") from exc
         return name
+
+    @field_validator("request_seconds", "command_seconds")
+    @classmethod
+    def _positive_seconds(cls, value: float) -> float:
+        if not (0 < value < float("inf")):
+            raise ValueError(f"a time limit must be a positive number of seconds, got {value!r}")
+        return value
 
     @property
     def tz(self) -> ZoneInfo:

@@ -18,8 +18,9 @@ from datetime import UTC, datetime
 from pathlib import Path
 
 from sqlalchemy.engine import make_url
+from sqlalchemy.exc import SQLAlchemyError
 
-from app.store import db
+from app.store import backup_schema, db
 from app.store import users as accounts
 from app.store.users import ROLE_LABELS, ROLES, AccountError
 
@@ -78,7 +79,8 @@ def cmd_users_set_password(args: argparse.Namespace) -> int:
             name = user.username
     except AccountError as exc:
         return _error(str(exc))
-    print(f"new password set for {name}; their sessions have ended and any sign-in lock is lifted")
+    print(f"new password set for {name}; their sessions have ended, their API tokens are "
+          "revoked and any sign-in lock is lifted")
     return EXIT_OK
 
 
@@ -144,29 +146,37 @@ def cmd_backup(args: argparse.Namespace) -> int:
                       "tools (for PostgreSQL: pg_dump --format=custom --file=FILE DATABASE, "
                       "safe while the server runs)")
     target = Path(args.file)
+    if target.is_dir():
+        return _error(f"{target} is a directory; give a file name for the backup")
     if target.exists() and not args.force:
         return _error(f"{target} exists; give --force to overwrite it")
     if target.resolve() == source.resolve():
         return _error("the backup file cannot be the database itself")
     partial = target.with_name(target.name + ".partial")
     partial.unlink(missing_ok=True)
-    src = sqlite3.connect(source)
     try:
-        dst = sqlite3.connect(partial)
+        src = sqlite3.connect(source)
         try:
-            src.backup(dst)
-            # One self-contained file: no -wal beside it.
-            dst.execute("PRAGMA journal_mode=DELETE")
-            check, revision = _integrity(dst), _revision(dst)
+            dst = sqlite3.connect(partial)
+            try:
+                src.backup(dst)
+                # One self-contained file: no -wal beside it.
+                dst.execute("PRAGMA journal_mode=DELETE")
+                check, revision = _integrity(dst), _revision(dst)
+            finally:
+                dst.close()
         finally:
-            dst.close()
+            src.close()
+        if check != "ok":
+            return _error(f"the copy failed its integrity check ({check}); nothing was written",
+                          EXIT_ERROR)
+        os.replace(partial, target)
+    except (OSError, sqlite3.Error) as exc:
+        return _error(f"could not write the backup to {target}: {_plain(exc)}; nothing was "
+                      "written", EXIT_ERROR)
     finally:
-        src.close()
-    if check != "ok":
+        # Whatever failed (a full disk, a target that cannot be replaced), no half copy stays.
         partial.unlink(missing_ok=True)
-        return _error(f"the copy failed its integrity check ({check}); nothing was written",
-                      EXIT_ERROR)
-    os.replace(partial, target)
     print(f"backed up {source} to {target} ({target.stat().st_size} bytes, "
           f"schema revision {revision})")
     return EXIT_OK
@@ -192,8 +202,14 @@ def cmd_restore(args: argparse.Namespace) -> int:
         return _error(f"{source} is not an SQLite database ({exc})")
     if check != "ok":
         return _error(f"{source} fails its integrity check ({check}); nothing was changed")
-    if revision is None:
-        return _error(f"{source} is not a Morrow database (it has no schema revision)")
+    try:
+        problems = backup_schema.schema_problems(source, revision)
+    except SQLAlchemyError:
+        problems = ["its tables cannot be read"]
+    if problems:
+        return _error(f"{source} cannot be restored: {'; '.join(problems)}. Nothing was "
+                      "changed")
+    honoured = _live_credentials(args.db)
     db.get_engine(args.db).dispose()  # this process's connections must not hold the file
     saved = None
     if target.exists():
@@ -224,11 +240,54 @@ def cmd_restore(args: argparse.Namespace) -> int:
         src.close()
     if check != "ok":
         return _error(f"the restored database fails its integrity check ({check})", EXIT_ERROR)
-    db.upgrade(args.db)  # a backup from an older version is brought up to this one
+    try:
+        db.upgrade(args.db)  # a backup from an older version is brought up to this one
+    except Exception:  # Alembic and the drivers raise several kinds; none leaves it usable
+        db.get_engine(args.db).dispose()
+        if saved is None:
+            return _error(f"{source} could not be brought up to this version's schema",
+                          EXIT_ERROR)
+        _put_back(saved, target)
+        return _error(f"{source} could not be brought up to this version's schema; the "
+                      "database was put back as it was before the restore", EXIT_ERROR)
+    with db.session_scope(args.db) as session:
+        revoked, ended = accounts.end_credentials_not_in(session, honoured,
+                                                          actor=_cli_actor())
     kept = f"; the replaced database is kept as {saved}" if saved else ""
     print(f"restored {target} from {source} (backup at schema revision {revision}, now "
           f"{db.current_revision(args.db)}){kept}")
+    if revoked or ended:
+        print(f"{revoked} API token(s) and {ended} sign-in session(s) from the backup were "
+              "ended: the replaced database no longer honoured them")
     return EXIT_OK
+
+
+def _put_back(saved: Path, target: Path) -> None:
+    """Copy the database a failed restore replaced back into place."""
+    kept = sqlite3.connect(f"file:{saved}?mode=ro", uri=True)
+    try:
+        live = sqlite3.connect(target, timeout=30)
+        try:
+            kept.backup(live)
+            live.execute("PRAGMA journal_mode=WAL")
+        finally:
+            live.close()
+    finally:
+        kept.close()
+
+
+def _live_credentials(url: str) -> accounts.LiveCredentials:
+    """What the database about to be replaced honours; nothing when it cannot be read (then
+    every token and session of the backup ends: see ``end_credentials_not_in``)."""
+    try:
+        with db.session_scope(url) as session:
+            return accounts.live_credentials(session)
+    except SQLAlchemyError:
+        return accounts.LiveCredentials(frozenset(), frozenset())
+
+
+def _plain(exc: BaseException) -> str:
+    return getattr(exc, "strerror", None) or str(exc)
 
 
 # -- parsers --------------------------------------------------------------------------------------

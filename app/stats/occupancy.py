@@ -51,6 +51,7 @@ from typing import Any, Protocol
 import numpy as np
 import numpy.typing as npt
 
+from app.stats.cancel import checkpoint
 from app.stats.poisson_binomial import (
     convolve_pmfs,
     negative_binomial_pmf,
@@ -230,6 +231,7 @@ def newcomers(booked: BookedAdmissions, streams: Sequence[ArrivalStream],
     presence = [stream_presence(s, h) for s in streams]
     pmfs, arriving, arriving_mean = [], [], []
     for k in range(h.size):
+        checkpoint()
         pmfs.append(poisson_binomial_pmf(p_booked[:, k]))
         by_name: dict[str, list[FloatArray]] = {}
         means: dict[str, float] = {}
@@ -323,6 +325,7 @@ def with_current(p_current: npt.ArrayLike, others: Newcomers, beds: Sequence[int
                          f"got {len(ceiling)}")
     out = []
     for k in range(n_instants):
+        checkpoint()
         fixed = convolve_pmfs(poisson_binomial_pmf(p_now[:, k]), others.booked[k])
         arriving = others.arriving[k]
         stream_mean = others.arriving_mean[k]
@@ -372,6 +375,7 @@ class PathDraws:
         ceiling = [None] * n_instants if limits is None else list(limits)
         admitted = np.ones(self.path.size, dtype=bool)
         for k in range(n_instants):
+            checkpoint()
             counts[:, k] += (self.stay_draws < p_now[:, k]).sum(axis=1)
             counts[:, k] += np.bincount(self.path[admitted & self.present[:, k]],
                                         minlength=n_paths)

@@ -85,6 +85,7 @@ import zlib
 from collections.abc import Callable, Iterable, Mapping, Sequence
 from dataclasses import dataclass, field
 from functools import lru_cache
+from itertools import islice
 from typing import Any
 
 import numpy as np
@@ -92,6 +93,7 @@ import numpy.typing as npt
 import pandas as pd
 from scipy import stats
 
+from app.stats.cancel import checkpoint
 from app.stats.erlang import beds_for_blocking, erlang_b, mean_occupancy
 from app.stats.phasetype import Coxian, PhaseType, distribution_from_dict
 
@@ -128,6 +130,9 @@ _LOG_TAIL = math.log(1e-12)
 # lambda * integral_w^inf S(u) du; warm up until that is below this share of lambda * mean stay.
 _WARMUP_TOLERANCE = 1e-3
 _MAX_WARMUP_WEEKS = 520
+# The loss system's loop calls the caller's cancellation check once per this many arrivals
+# (about 10 ms of work; app.stats.cancel).
+_CHECK_EVERY = 16384
 # Purposes of the generators of one stream in one replication (part of the seed key).
 _COUNT, _HOUR, _GROUP, _STAY, _CANCEL, _BOOKED = range(6)
 
@@ -767,6 +772,7 @@ def draw_demand(inp: PlanningInput, replication: int) -> Demand:
     group_index = {g.name: i for i, g in enumerate(inp.groups)}
     times, stays, streams, groups = [], [], [], []
     for s_index, stream in enumerate(inp.streams):
+        checkpoint()
         counts, present = _daily_counts(stream, inp, replication, weekday)
         slots = int(counts.max(initial=0))
         if present is None:
@@ -817,16 +823,22 @@ def _turned_away(time: list[float], leave: list[float], beds: int) -> list[int]:
     A heap of the admitted patients' leaving times; O(n log beds). A patient leaving at the
     very instant of an arrival frees the bed for it.
     """
+    if len(time) != len(leave):
+        raise ValueError(f"time and leave differ in length: {len(time)} and {len(leave)}")
     occupied: list[float] = []
     refused: list[int] = []
     push, pop = heapq.heappush, heapq.heappop
-    for i, (t, d) in enumerate(zip(time, leave, strict=True)):
-        while occupied and occupied[0] <= t:
-            pop(occupied)
-        if len(occupied) < beds:
-            push(occupied, d)
-        else:
-            refused.append(i)
+    arrivals = enumerate(zip(time, leave))  # noqa: B905 (lengths checked above)
+    # In chunks, so the caller's cancellation check stays out of the per-arrival loop.
+    for _ in range(0, len(time), _CHECK_EVERY):
+        checkpoint()
+        for i, (t, d) in islice(arrivals, _CHECK_EVERY):
+            while occupied and occupied[0] <= t:
+                pop(occupied)
+            if len(occupied) < beds:
+                push(occupied, d)
+            else:
+                refused.append(i)
     return refused
 
 
@@ -847,6 +859,7 @@ def _measure(
     inp: PlanningInput, prepared: _Prepared, beds: int | None
 ) -> tuple[dict[str, float], IntArray]:
     """One replication's figures for one bed count, and its census counts."""
+    checkpoint()
     demand = prepared.demand
     admitted = np.ones(demand.time.size, dtype=bool)
     if beds is not None:

@@ -160,12 +160,14 @@ def create_user(session: Session, username: str, role: str, password: str, *, ac
 
 def set_password(session: Session, username: str, password: str, *, actor: str,
                  form: str | None = None) -> UserAccount:
-    """New password; the user's sessions end and any sign-in lock on the name is lifted."""
+    """New password; the user's sessions end, their API tokens are revoked and any sign-in
+    lock on the name is lifted."""
     user = _require_user(session, username)
     check_password_rules(password)
     user.password_hash = hash_password(password)
     user.password_changed_at = utcnow()
     session.execute(delete(WebSession).where(WebSession.user_id == user.id))
+    _revoke_all_tokens(session, user, actor=actor, form=form)
     session.execute(delete(SigninFailure).where(SigninFailure.username == user.username))
     record_audit(session, actor, "update", "user", user.username, {"password": "(old)"},
                  {"password": "(changed)"}, form=form)
@@ -189,7 +191,8 @@ def set_role(session: Session, username: str, role: str, *, actor: str,
 
 def set_active(session: Session, username: str, active: bool, *, actor: str,
                form: str | None = None) -> UserAccount:
-    """Disable or re-enable an account; disabling ends its sessions (its tokens stop working)."""
+    """Disable or re-enable an account; disabling ends its sessions and revokes its tokens, so
+    re-enabling it brings none of them back (the bed manager issues new ones)."""
     user = _require_user(session, username)
     if user.active == active:
         return user
@@ -199,6 +202,7 @@ def set_active(session: Session, username: str, active: bool, *, actor: str,
     user.active = active
     if not active:
         session.execute(delete(WebSession).where(WebSession.user_id == user.id))
+        _revoke_all_tokens(session, user, actor=actor, form=form)
     record_audit(session, actor, "update", "user", user.username, before, _user_view(user),
                  form=form)
     return user
@@ -340,6 +344,17 @@ def revoke_token(session: Session, token_id: int, *, actor: str,
     return token
 
 
+def _revoke_all_tokens(session: Session, user: UserAccount, *, actor: str,
+                       form: str | None) -> None:
+    """Revoke every live token of ``user``: a token is a standing credential, and one issued
+    under a password that has since been reset (perhaps because it leaked) or to an account
+    that was disabled must not outlive that decision."""
+    live = session.scalars(select(ApiToken.id).where(ApiToken.user_id == user.id,
+                                                     ApiToken.revoked_at.is_(None))).all()
+    for token_id in live:
+        revoke_token(session, token_id, actor=actor, form=form)
+
+
 def list_tokens(session: Session) -> list[tuple[ApiToken, str]]:
     rows = session.execute(select(ApiToken, UserAccount.username)
                            .join(UserAccount, ApiToken.user_id == UserAccount.id)
@@ -348,7 +363,12 @@ def list_tokens(session: Session) -> list[tuple[ApiToken, str]]:
 
 
 def token_user(session: Session, raw: str, *, now: datetime) -> UserAccount | None:
-    """The active user a live (unrevoked) token acts for, or None."""
+    """The active user a live token acts for, or None.
+
+    Live: not revoked, and issued after the account's last password change. The second rule
+    also ends tokens that a database from before revocation on password change still holds
+    unrevoked (an older backup restored).
+    """
     if not raw.startswith(TOKEN_PREFIX):
         return None
     row = session.execute(
@@ -359,9 +379,52 @@ def token_user(session: Session, raw: str, *, now: datetime) -> UserAccount | No
     token, user = row
     if token.revoked_at is not None or not user.active:
         return None
+    if token.created_at < user.password_changed_at:
+        return None
     if token.last_used_at is None or now - token.last_used_at >= TOUCH_EVERY:
         token.last_used_at = now
     return user
+
+
+# -- credentials across a restore --------------------------------------------------------------
+
+@dataclass(frozen=True)
+class LiveCredentials:
+    """SHA-256 of every token and session cookie that a database honours."""
+
+    tokens: frozenset[str]
+    sessions: frozenset[str]
+
+
+def live_credentials(session: Session) -> LiveCredentials:
+    """The tokens and sessions this database would accept now (see ``token_user``)."""
+    tokens = session.scalars(
+        select(ApiToken.token_hash).join(UserAccount, ApiToken.user_id == UserAccount.id)
+        .where(ApiToken.revoked_at.is_(None), UserAccount.active.is_(True),
+               ApiToken.created_at >= UserAccount.password_changed_at))
+    sessions = session.scalars(select(WebSession.token_hash))
+    return LiveCredentials(frozenset(tokens), frozenset(sessions))
+
+
+def end_credentials_not_in(session: Session, live: LiveCredentials, *,
+                           actor: str) -> tuple[int, int]:
+    """After a restore: revoke every token, and end every session, that the replaced database
+    no longer honoured; returns (tokens revoked, sessions ended).
+
+    A backup holds the tokens and sessions of its day. Restoring it would otherwise bring
+    back a token revoked since (by hand, by a password reset or by disabling the account)
+    or a browser signed out since. So a credential works after a restore only if it worked
+    both in the backup and in the database it replaced; when that database could not be
+    read, ``live`` is empty and every token and session ends.
+    """
+    stale = session.scalars(select(ApiToken.id).where(
+        ApiToken.revoked_at.is_(None), ApiToken.token_hash.not_in(live.tokens))).all()
+    for token_id in stale:
+        revoke_token(session, token_id, actor=actor)
+    ended = session.execute(delete(WebSession).where(
+        WebSession.token_hash.not_in(live.sessions)).execution_options(
+            synchronize_session=False))
+    return len(stale), int(getattr(ended, "rowcount", 0) or 0)
 
 
 # -- server secrets ------------------------------------------------------------------------------

@@ -6,7 +6,7 @@ from pathlib import Path
 
 import plotly
 from fastapi import FastAPI, Request
-from fastapi.responses import FileResponse, HTMLResponse
+from fastapi.responses import FileResponse, HTMLResponse, JSONResponse
 from fastapi.staticfiles import StaticFiles
 
 from app import __version__
@@ -15,6 +15,7 @@ from app.store import db, repo
 from app.web import (
     api,
     forecasts,
+    limits,
     model_page,
     pages,
     planning_page,
@@ -35,10 +36,16 @@ def create_app(database_url: str | None = None) -> FastAPI:
     """Build the app for one database; migrations are applied before it serves."""
     url = database_url or get_settings().database_url
     db.upgrade(url)
-    app = FastAPI(title="Morrow", version=__version__)
+    # FastAPI's /docs and /redoc pages load Swagger UI and ReDoc from a CDN and start them
+    # with an inline script: offline and under the Content-Security-Policy they cannot work,
+    # and no installed package carries those assets. They are off; the schema itself is
+    # served below to signed-in users only.
+    app = FastAPI(title="Morrow", version=__version__, docs_url=None, redoc_url=None,
+                  openapi_url=None, lifespan=limits.lifespan)
     app.state.database_url = url
     app.mount("/static", StaticFiles(directory=str(PROJECT_ROOT / "static")), name="static")
     security.install(app)
+    limits.install(app)  # added last, so it runs first: the limit covers the whole request
     app.include_router(routes_auth.router)
     app.include_router(routes_audit.router)
     app.include_router(pages.router)
@@ -51,6 +58,11 @@ def create_app(database_url: str | None = None) -> FastAPI:
     def plotly_js() -> FileResponse:
         return FileResponse(PLOTLY_JS, media_type="text/javascript",
                             headers={"Cache-Control": "public, max-age=86400"})
+
+    @app.get("/openapi.json", include_in_schema=False)
+    def openapi_schema(actor: ReadActor) -> JSONResponse:
+        """The API's OpenAPI schema (signed in: it lists every route and parameter)."""
+        return JSONResponse(app.openapi())
 
     @app.get("/health")
     def health() -> dict[str, object]:

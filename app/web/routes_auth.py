@@ -10,6 +10,7 @@ from fastapi import APIRouter, Form, Path, Request
 from fastapi.responses import HTMLResponse, JSONResponse, RedirectResponse, Response
 from pydantic import BaseModel, Field
 
+from app import bounds
 from app.config import get_settings
 from app.store import audit
 from app.store import users as accounts
@@ -174,7 +175,8 @@ def change_role(request: Request, session: SessionDep, actor: AdminActor, userna
              include_in_schema=False)
 def reset_password(request: Request, session: SessionDep, actor: AdminActor, username: str,
                    password: Annotated[str, Form(max_length=2000)] = "") -> HTMLResponse:
-    """Set a new password (the account's sessions end; a sign-in lock is lifted)."""
+    """Set a new password (the account's sessions and API tokens end; a sign-in lock is
+    lifted)."""
     try:
         user = accounts.set_password(session, username, password, actor=actor.username,
                                      form=form_origin(request))
@@ -234,8 +236,8 @@ class WhoAmI(BaseModel):
 
 
 class TokenCreate(BaseModel):
-    username: str = Field(min_length=1, max_length=64)
-    label: str = Field(min_length=1, max_length=100)
+    username: str = Field(min_length=1, max_length=64, pattern=bounds.NO_CONTROL_CHARACTERS)
+    label: str = Field(min_length=1, max_length=100, pattern=bounds.NO_CONTROL_CHARACTERS)
 
 
 class TokenRead(BaseModel):
