@@ -15,12 +15,16 @@ from __future__ import annotations
 
 import argparse
 import json
+import math
 import sys
 from collections.abc import Callable
 from typing import Any, TextIO
 
+from app import bounds
+from app.cli.args import unit_code as unit_code_arg
 from app.config import current_time, get_settings
 from app.store import db, repo
+from app.time_limits import command_limit
 
 EXIT_OK, EXIT_ERROR, EXIT_BAD_INPUT = 0, 1, 2
 DAYS_PER_YEAR = 365
@@ -34,9 +38,12 @@ class PlanInputError(ValueError):
 
 def _number(text: str, what: str) -> float:
     try:
-        return float(text)
+        value = float(text)
     except ValueError:
         raise PlanInputError(f"{what}: {text!r} is not a number") from None
+    if not math.isfinite(value):  # inf would pass on to round() and fail there
+        raise PlanInputError(f"{what}: {text!r} is not a finite number")
+    return value
 
 
 def parse_factor(text: str, what: str) -> float:
@@ -73,15 +80,19 @@ def parse_beds(text: str) -> tuple[int, ...]:
     try:
         for part in text.split(","):
             low, sep, high = part.strip().partition("-")
-            if sep:
-                counts.extend(range(int(low), int(high) + 1))
-            else:
-                counts.append(int(low))
-    except ValueError:
+            ends = [int(low), int(high)] if sep else [int(low)]
+            # Checked before a range is spelt out: 1-1000000000 would fill the memory.
+            if not all(1 <= n <= bounds.MAX_BEDS for n in ends):
+                raise PlanInputError(f"--beds {text!r}: bed counts must be from 1 to "
+                                     f"{bounds.MAX_BEDS}")
+            counts.extend(range(ends[0], ends[-1] + 1))
+    except ValueError as exc:
+        if isinstance(exc, PlanInputError):
+            raise
         raise PlanInputError(f"--beds {text!r}: give a count (16), a range (12-24) or a list "
                              "(12,14,16)") from None
-    if not counts or min(counts) < 1:
-        raise PlanInputError(f"--beds {text!r}: bed counts must be 1 or more")
+    if not counts:
+        raise PlanInputError(f"--beds {text!r}: a range must run from low to high (12-24)")
     return tuple(sorted(set(counts)))
 
 
@@ -163,7 +174,10 @@ def cmd_plan(args: argparse.Namespace) -> int:
         return _error(str(exc))
     show = None if args.json or not sys.stderr.isatty() else progress_bar(sys.stderr)
     try:
-        report = run_plan(demand, settings, scenarios, progress=show)
+        with command_limit("The planning simulation",
+                           "Try fewer --years or --replications, or a larger "
+                           "MORROW_COMMAND_SECONDS."):
+            report = run_plan(demand, settings, scenarios, progress=show)
     except ValueError as exc:  # for example a scenario with no admissions left at all
         return _error(str(exc))
     if args.json:
@@ -257,7 +271,7 @@ def register(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
         epilog="Scenario options can be repeated; each is one scenario. Examples: "
                "--scale-arrivals emergency=+10%%  --scale-stay longest=0.8  "
                "--move-share G1:G2=20%%  --move-electives Mon:Fri=0.5")
-    p.add_argument("--unit", required=True)
+    p.add_argument("--unit", required=True, type=unit_code_arg)
     p.add_argument("--target", default="0.05",
                    help="largest acceptable share of arrivals finding no bed (0.05 or 5%%)")
     p.add_argument("--years", default="2", help="years simulated per replication (default 2)")

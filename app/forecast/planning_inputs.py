@@ -245,6 +245,8 @@ def unit_planning_input(session: Session, unit: str, as_of: datetime, tz: ZoneIn
     if record is None:
         record = model_for(session, unit, as_of)
     history = load_state(session, unit, record.trained_until, tz, with_history=True)
-    beds = history.beds_on(as_of.astimezone(tz).date())
+    # A unit closed today (0 staffed beds) is planned as one without a bed plan: the
+    # comparison then uses the beds needed instead of a count the simulation cannot run.
+    beds = history.beds_on(as_of.astimezone(tz).date()) or None
     return build_planning_input(record, history, beds=beds, days=days,
                                 replications=replications, seed=seed)

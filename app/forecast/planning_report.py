@@ -26,6 +26,7 @@ from typing import Any
 
 import pandas as pd
 
+from app import bounds
 from app.forecast.planning_inputs import UnitDemand
 from app.stats.erlang import erlang_b
 from app.stats.planning import (
@@ -88,15 +89,17 @@ class PlanSettings:
     def __post_init__(self) -> None:
         if not (math.isfinite(self.target) and 0 < self.target < 1):
             raise ValueError(f"target: must be between 0 and 1 (e.g. 0.05), got {self.target!r}")
-        if self.days < 7:
-            raise ValueError(f"days: simulate at least a week, got {self.days!r}")
-        if self.replications < 2:
-            raise ValueError(f"replications: at least 2 are needed for an interval, "
-                             f"got {self.replications!r}")
-        if self.beds is not None and (not self.beds or min(self.beds) < 1):
-            raise ValueError(f"beds: bed counts must be 1 or more, got {self.beds!r}")
-        if self.compare_at is not None and self.compare_at < 1:
-            raise ValueError(f"compare_at: must be 1 or more, got {self.compare_at!r}")
+        bounds.check_plan_days(self.days)
+        bounds.check_whole(self.replications, "replications", bounds.MIN_PLAN_REPLICATIONS,
+                           bounds.MAX_PLAN_REPLICATIONS)
+        bounds.check_whole(self.seed, "seed", 0, bounds.MAX_SEED)
+        if self.beds is not None:
+            if not self.beds:
+                raise ValueError("beds: give at least one bed count")
+            for count in (min(self.beds), max(self.beds)):
+                bounds.check_whole(count, "beds", 1, bounds.MAX_BEDS)
+        if self.compare_at is not None:
+            bounds.check_whole(self.compare_at, "compare at", 1, bounds.MAX_BEDS)
 
 
 # ---------------------------------------------------------------------------------------------
@@ -114,8 +117,7 @@ def arrivals_scenario(demand: UnitDemand, what: str, factor: float) -> Scenario:
     name, or ``all``; ``factor`` 1.1 means 10% more."""
     types = set(demand.baseline.admission_types())
     streams = {s.name for s in demand.baseline.streams}
-    if not (math.isfinite(factor) and factor >= 0):
-        raise ValueError(f"arrivals factor must be 0 or more (1.1 = 10% more), got {factor!r}")
+    bounds.check_arrivals_factor(factor)
     if what == "all":
         change = ScaleArrivals(factor)
         label = "admissions"
@@ -144,8 +146,7 @@ def _group(demand: UnitDemand, name: str) -> str:
 def stay_scenario(demand: UnitDemand, group: str, factor: float) -> Scenario:
     """Every stay of ``group`` (``G1``... or ``longest``) times ``factor`` (0.8: 20% shorter)."""
     name = _group(demand, group)
-    if not (math.isfinite(factor) and factor > 0):
-        raise ValueError(f"stay factor must be more than 0 (0.8 = 20% shorter), got {factor!r}")
+    bounds.check_stay_factor(factor)
     change = round(abs(factor - 1.0) * 100.0, 1)
     words = "unchanged" if change == 0 else f"{change:g}% {'longer' if factor > 1 else 'shorter'}"
     return Scenario(f"stays in {name} {words}", (ScaleStay(name, factor),))
@@ -158,8 +159,7 @@ def share_scenario(demand: UnitDemand, from_group: str, to_group: str, share: fl
     source, target = _group(demand, from_group), _group(demand, to_group)
     if source == target:
         raise ValueError(f"move patients between two different groups, got {source} twice")
-    if not (math.isfinite(share) and 0 <= share <= 1):
-        raise ValueError(f"share moved must be between 0 and 1 (0.2 = 20%), got {share!r}")
+    bounds.check_share(share)
     return Scenario(f"{share:.0%} of {source} patients as {target}",
                     (MoveGroupShare(source, target, share),))
 
@@ -184,8 +184,7 @@ def electives_scenario(demand: UnitDemand, from_day: int, to_day: int, share: fl
     if from_day == to_day:
         raise ValueError(f"move electives between two different weekdays, got "
                          f"{WEEKDAYS[from_day]} twice")
-    if not (math.isfinite(share) and 0 <= share <= 1):
-        raise ValueError(f"share moved must be between 0 and 1 (0.5 = half), got {share!r}")
+    bounds.check_share(share)
     return Scenario(f"{share:.0%} of {WEEKDAYS[from_day]} electives on {WEEKDAYS[to_day]}",
                     (MoveElectives(from_day, to_day, share),))
 

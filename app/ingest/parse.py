@@ -5,12 +5,15 @@ from __future__ import annotations
 import csv
 import io
 import math
+import re
+import unicodedata
 from collections.abc import Callable, Iterator
 from dataclasses import dataclass, field
 from datetime import date, datetime
 from typing import Any
 from zoneinfo import ZoneInfo
 
+from app import bounds
 from app.timeutil import parse_clock, parse_date, parse_timestamp
 
 MAX_PROBLEMS_SHOWN = 50
@@ -92,7 +95,25 @@ def identifier(value: str) -> str:
     value = value.strip()
     if len(value) > 64:
         raise ValueError("identifier longer than 64 characters")
+    if any(unicodedata.category(ch) == "Cc" for ch in value):
+        raise ValueError("an identifier holds no control characters (tab, line break, ...)")
     return value
+
+
+# A unit code is part of every page's address (/units/CODE/...). These characters stand for
+# themselves in a URL path and in a file name; "/", "?", "#", "%", a backslash, spaces and
+# letters outside ASCII would make the unit's pages unreachable or ambiguous.
+UNIT_CODE_CHARACTERS = "letters A-Z and a-z, digits 0-9 and - _ . + = @"
+_UNIT_CODE = re.compile(r"[A-Za-z0-9_.+=@-]{1,64}")
+
+
+def unit_code(value: str) -> str:
+    """A unit code: 1 to 64 of ``UNIT_CODE_CHARACTERS``, not "." or ".." (path segments)."""
+    code = value.strip()
+    if not _UNIT_CODE.fullmatch(code) or code in (".", ".."):
+        raise ValueError(f"a unit code is 1 to 64 characters: {UNIT_CODE_CHARACTERS} "
+                         "(not only dots)")
+    return code
 
 
 def one_of(*allowed: str) -> Parser:
@@ -105,12 +126,21 @@ def one_of(*allowed: str) -> Parser:
     return parse
 
 
+# Python's int() and float() also read "1_2" as 12 and other scripts' digits ("١٢" as 12): a
+# cell is read only as written with the ASCII digits 0-9, so what is stored is what was shown.
+_WHOLE = re.compile(r"[+-]?[0-9]+")
+# An exponent is accepted: JSON clients and spreadsheets write very small or large values
+# that way (the API passes Python's repr of a float, e.g. 1e-05), and it is as unambiguous as
+# a decimal point. Out-of-range values are refused by the column's own range check.
+_REAL = re.compile(r"[+-]?(?:[0-9]+(?:\.[0-9]*)?|\.[0-9]+)(?:[eE][+-]?[0-9]+)?")
+
+
 def integer(low: int, high: int) -> Parser:
     def parse(value: str) -> int:
-        try:
-            number = int(value.strip())
-        except ValueError:
-            raise ValueError("expected a whole number") from None
+        if not _WHOLE.fullmatch(value.strip()):
+            raise ValueError("expected a whole number written with the digits 0-9")
+        # Python refuses to convert thousands of digits; any such value is out of range anyway.
+        number = int(value.strip()) if len(value.strip()) <= 20 else high + 1
         if not low <= number <= high:
             raise ValueError(f"expected a whole number from {low} to {high}")
         return number
@@ -119,30 +149,43 @@ def integer(low: int, high: int) -> Parser:
 
 
 def number(value: str) -> float:
-    try:
-        result = float(value.strip())
-    except ValueError:
-        raise ValueError("expected a number") from None
+    if not _REAL.fullmatch(value.strip()):
+        raise ValueError("expected a finite number written with the digits 0-9, an optional "
+                         "sign and decimal point (e.g. -1.5 or 2e-3)")
+    result = float(value.strip())
     if not math.isfinite(result):
         raise ValueError("expected a finite number")
     return result
 
 
 def timestamp(tz: ZoneInfo) -> Parser:
+    # Every imported timestamp records something that has happened; the clock is read once
+    # per file so that all its rows meet the same bound.
+    latest = bounds.latest_event()
+
     def parse(value: str) -> datetime:
         try:
-            return parse_timestamp(value, tz)
+            moment = parse_timestamp(value, tz)
         except ValueError:
             raise ValueError("expected an ISO 8601 timestamp, e.g. 2026-03-02T08:00") from None
+        if not bounds.EARLIEST <= moment <= latest:
+            raise ValueError(f"expected a time from {bounds.EARLIEST:%Y-%m-%d} to a day after "
+                             f"now ({latest:%Y-%m-%d %H:%M} UTC)")
+        return moment
 
     return parse
 
 
 def day(value: str) -> date:
     try:
-        return parse_date(value)
+        result = parse_date(value)
     except ValueError:
         raise ValueError("expected a date YYYY-MM-DD") from None
+    latest = bounds.latest_planned_date()
+    if not bounds.EARLIEST_DATE <= result <= latest:
+        raise ValueError(f"expected a date from {bounds.EARLIEST_DATE} to "
+                         f"{bounds.PLAN_HORIZON_DAYS} days from today ({latest})")
+    return result
 
 
 def clock(value: str) -> str:
@@ -159,15 +202,67 @@ def _decode(data: bytes, sheet: Sheet) -> str | None:
         sheet.problem(line, None, None, "the file is not UTF-8 text; save it as CSV UTF-8")
         return None
     if "\x00" in content:
-        sheet.problem(None, None, None, "the file holds NUL bytes: it is not a CSV text file")
+        line, column = _where_first_nul(content)
+        sheet.problem(line, column, None, "the file holds NUL bytes (the first is here): it is "
+                      "not a CSV text file")
         return None
     return content
 
 
+_LINE_BREAK = re.compile(r"\r\n|\r|\n")  # what the csv reader counts as a line
+
+
+def _where_first_nul(content: str) -> tuple[int, str | None]:
+    """Line and column (header name, when the header reads) of the first NUL character."""
+    line = len(_LINE_BREAK.findall(content, 0, content.index("\x00"))) + 1
+    marker = "\ufffe"  # a noncharacter: never in a CSV cell, so it marks where NUL was
+    header: list[str] = []
+    try:
+        for start, record in _records(content.replace("\x00", marker)):
+            if start == 1:
+                header = [h.strip().lower() for h in record]
+            for i, cell in enumerate(record):
+                if marker in cell:
+                    name = header[i] if i < len(header) and start > 1 else None
+                    return start, name or None
+    except CsvTrouble:
+        pass
+    return line, None
+
+
+class CsvTrouble(Exception):
+    """A record that cannot be read as CSV, with the line it starts on."""
+
+    def __init__(self, line: int, why: str):
+        self.line = line
+        self.why = why
+        super().__init__(f"line {line}: {why}")
+
+
+def _plain(exc: csv.Error) -> str:
+    """The csv module's complaint in words a person who saved the file understands."""
+    text = str(exc)
+    if "field larger than field limit" in text:
+        return (f"a cell is longer than {csv.field_size_limit():,} characters (often a quote "
+                "that is never closed)")
+    if "unexpected end of data" in text:
+        return 'a quoted cell that starts on this line is never closed (a " is missing)'
+    if "expected after" in text:
+        return 'a quoted cell on this line is followed by text: write "" for a quote inside it'
+    return f"this line cannot be read as CSV ({text})"
+
+
 def _records(content: str) -> Iterator[tuple[int, list[str]]]:
+    """Each record with the line it starts on; ``CsvTrouble`` names the line of a bad one."""
     reader = csv.reader(io.StringIO(content, newline=""), strict=True)
     start = 1
-    for record in reader:
+    while True:
+        try:
+            record = next(reader)
+        except StopIteration:
+            return
+        except csv.Error as exc:
+            raise CsvTrouble(start, _plain(exc)) from None
         yield start, record
         start = reader.line_num + 1
 
@@ -181,8 +276,8 @@ def read_sheet(data: bytes, filename: str, columns: list[Column]) -> Sheet:
     records = _records(content)
     try:
         first = next(records, None)
-    except csv.Error as exc:
-        sheet.problem(1, None, None, f"the header row cannot be read as CSV: {exc}")
+    except CsvTrouble as trouble:
+        sheet.problem(trouble.line, None, None, f"the header row cannot be read: {trouble.why}")
         return sheet
     if first is None:
         sheet.problem(1, None, None, "the file is empty: a header row is required")
@@ -233,6 +328,6 @@ def read_sheet(data: bytes, filename: str, columns: list[Column]) -> Sheet:
                 row.setdefault(c.name, None)
             if ok:
                 sheet.rows.append((line, row))
-    except csv.Error as exc:
-        sheet.problem(None, None, None, f"the file cannot be read as CSV: {exc}")
+    except CsvTrouble as trouble:
+        sheet.problem(trouble.line, None, None, trouble.why)
     return sheet

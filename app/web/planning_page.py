@@ -19,6 +19,7 @@ from typing import Any
 from fastapi import APIRouter, HTTPException, Request
 from fastapi.responses import HTMLResponse, Response
 
+from app import bounds
 from app.config import current_time, get_settings
 from app.forecast.planning_inputs import UnitDemand, unit_planning_input
 from app.forecast.planning_report import (
@@ -138,8 +139,9 @@ def _settings(query: Mapping[str, str]) -> tuple[PlanSettings, dict[str, Any]]:
     compare_at = None
     if shown["compare_at"]:
         compare_at = int(_number(shown["compare_at"], "Compare at"))
-        if not 1 <= compare_at <= 1000:
-            raise ValueError(f"Compare at: give a bed count from 1 to 1000, got {compare_at}")
+        if not 1 <= compare_at <= bounds.MAX_BEDS:
+            raise ValueError(f"Compare at: give a bed count from 1 to {bounds.MAX_BEDS}, "
+                             f"got {compare_at}")
     return PlanSettings(target=target / 100, days=365 * years, replications=replications,
                         compare_at=compare_at), shown
 
@@ -221,11 +223,11 @@ def planning_page(request: Request, unit: str, session: SessionDep, actor: ReadA
         context.setdefault("form", {k: query.get(k, "") for k in
                                     ("target", "years", "replications", "compare_at")})
         context["problem"] = str(exc)
-        return templates.TemplateResponse(request, "planning.html", context, status_code=400)
+        return templates.TemplateResponse(request, "planning.html", context, status_code=422)
     try:
         context["report"] = _report(url, demand, settings, scenarios)
     except ValueError as exc:  # for example a scenario with no admissions left at all
         context["problem"] = str(exc)
-        return templates.TemplateResponse(request, "planning.html", context, status_code=400)
+        return templates.TemplateResponse(request, "planning.html", context, status_code=422)
     context["target_label"] = f"{settings.target * 100:g}%"
     return templates.TemplateResponse(request, "planning.html", context)

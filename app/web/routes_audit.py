@@ -9,9 +9,10 @@ from collections.abc import Iterator
 from datetime import date, datetime, time, timedelta
 from typing import Annotated, Any
 
-from fastapi import APIRouter, Query, Request
+from fastapi import APIRouter, HTTPException, Query, Request
 from fastapi.responses import HTMLResponse, StreamingResponse
 
+from app import bounds
 from app.config import get_settings
 from app.store import db
 from app.store.audit import AuditFilter, AuditRow, count_events, iter_events, list_events
@@ -34,6 +35,12 @@ def _dumps(values: object) -> str:
 
 def _filter(actor: str, entity: str, entity_id: str, action: str, batch: int | None,
             since: date | None, until: date | None) -> AuditFilter:
+    try:
+        for field, day in (("since", since), ("until", until)):
+            if day is not None:
+                bounds.check_filter_date(day, field)
+    except bounds.OutOfBounds as exc:
+        raise HTTPException(status_code=422, detail=str(exc)) from None
     tz = get_settings().tz
     # Days are the site's days: from local midnight of ``since`` to local midnight after ``until``.
     start = datetime.combine(since, time(0), tz) if since else None
@@ -42,7 +49,7 @@ def _filter(actor: str, entity: str, entity_id: str, action: str, batch: int | N
                        action=action.strip(), batch_id=batch, since=start, until=end)
 
 
-Text = Annotated[str, Query(max_length=200)]
+Text = Annotated[str, Query(max_length=200, pattern=bounds.NO_CONTROL_CHARACTERS)]
 BatchId = Annotated[int | None, Query(ge=1, le=2**63 - 1)]
 
 

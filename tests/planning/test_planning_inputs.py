@@ -8,6 +8,7 @@ law L = lambda W (METHODS.md section 3) for the offered load.
 
 from __future__ import annotations
 
+import copy
 from datetime import timedelta
 
 import numpy as np
@@ -44,28 +45,42 @@ def _stream(demand, name):
     return next(s for s in demand.baseline.streams if s.name == name)
 
 
-def test_emergency_rate_by_weekday_is_the_models_mean_over_a_year(built) -> None:
-    record, demand = built
-    emergency = _stream(demand, EMERGENCY_STREAM)
-    assert isinstance(emergency, DemandStream)
-    rate = record.payload["arrivals"]["emergency"]["rate"]
-    b = rate["coefficients"]
-    assert rate["seasonal"] and len(b) == 9  # the demo has two years: season is fitted
-    # log mu = b0 + b_weekday + c1 cos(theta) + c2 sin(theta); over a whole cycle the mean of
-    # exp(c1 cos + c2 sin) is I0(sqrt(c1^2 + c2^2)) (Abramowitz & Stegun 9.6.16). The builder
-    # averages 52 weeks of days, so it matches to sampling error (well under 0.1%).
-    season = i0(np.hypot(b[7], b[8]))
-    expected = [np.exp(b[0] + (b[w] if w else 0.0)) * season for w in range(7)]
-    assert emergency.rate_by_weekday == pytest.approx(expected, rel=1e-3)
-    # The model's dispersion is kept: NB2 size 1/alpha where the daily demand was found
-    # overdispersed, Poisson otherwise (on the demo ward, once the days it was full are
-    # weighted by their open share, the Cameron-Trivedi test finds no overdispersion).
-    if rate["alpha"] is None:
-        assert emergency.dispersion is None
-    else:
-        assert emergency.dispersion == pytest.approx(1.0 / rate["alpha"])
-    assert emergency.hour_profile == pytest.approx(
-        record.payload["arrivals"]["emergency"]["hour_profile"])
+def _seasonal(record: ModelRecord, c1: float, c2: float) -> ModelRecord:
+    """The same model with an annual term on its emergency rate (whether training chose one
+    depends on held-out weeks; the year-average must hold either way)."""
+    payload = copy.deepcopy(record.payload)
+    rate = payload["arrivals"]["emergency"]["rate"]
+    rate["coefficients"] = [*rate["coefficients"][:7], c1, c2]
+    rate["seasonal"] = True
+    return ModelRecord(record.id, record.trained_until, payload)
+
+
+def test_emergency_rate_by_weekday_is_the_models_mean_over_a_year(planning_db: str,
+                                                                    built) -> None:
+    trained, _ = built
+    with db.session_scope(planning_db) as session:
+        history = load_state(session, UNIT, trained.trained_until, UTC_ZONE)
+    for record in (trained, _seasonal(trained, 0.25, -0.1)):
+        demand = build_planning_input(record, history, beds=28)
+        emergency = _stream(demand, EMERGENCY_STREAM)
+        assert isinstance(emergency, DemandStream)
+        rate = record.payload["arrivals"]["emergency"]["rate"]
+        b = rate["coefficients"]
+        # log mu = b0 + b_weekday (+ c1 cos(theta) + c2 sin(theta)); over a whole cycle the
+        # mean of exp(c1 cos + c2 sin) is I0(sqrt(c1^2 + c2^2)) (Abramowitz & Stegun 9.6.16).
+        # The builder averages 52 weeks of days, so it matches to sampling error (well under
+        # 0.1%).
+        season = i0(np.hypot(b[7], b[8])) if rate["seasonal"] else 1.0
+        expected = [np.exp(b[0] + (b[w] if w else 0.0)) * season for w in range(7)]
+        assert emergency.rate_by_weekday == pytest.approx(expected, rel=1e-3)
+        # The model's dispersion is kept: NB2 size 1/alpha where the daily demand was found
+        # overdispersed, Poisson otherwise.
+        if rate["alpha"] is None:
+            assert emergency.dispersion is None
+        else:
+            assert emergency.dispersion == pytest.approx(1.0 / rate["alpha"])
+        assert emergency.hour_profile == pytest.approx(
+            record.payload["arrivals"]["emergency"]["hour_profile"])
 
 
 def test_groups_are_the_models_admission_groups_and_shares_sum_to_one(built) -> None:

@@ -80,10 +80,10 @@ def test_form_chooses_target_and_three_scenarios(client: TestClient) -> None:
 
 def test_bad_form_values_are_explained(client: TestClient) -> None:
     page = client.get(f"/units/{UNIT}/planning?{FORM.replace('s3_to=G2', 's3_to=G9')}")
-    assert page.status_code == 400
+    assert page.status_code == 422
     assert "no patient group &#39;G9&#39;" in page.text
     page = client.get(f"/units/{UNIT}/planning?{FORM.replace('years=1', 'years=30')}")
-    assert page.status_code == 400 and "morrow plan" in html.unescape(page.text)
+    assert page.status_code == 422 and "morrow plan" in html.unescape(page.text)
     assert client.get("/units/KV-NONE/planning").status_code == 404
 
 
