@@ -289,13 +289,28 @@ def emergency_means(state: UnitState, arrivals: Mapping[str, Any], span: list[da
                 expected = expected * by_day
             means = means * level_multiplier(counts, expected, rate.level_half_life)
     if rate.size is not None:
-        now = state.as_of.tz_convert(state.tz)
         seen = int((admitted.dt.date == today).sum())
-        hour = now.hour + now.minute / 60.0
-        passed = float(profile[: now.hour].sum() + profile[now.hour] * (hour - now.hour))
+        passed = _demand_passed_today(state, today, excess_beds(arrivals), profile)
         mu = float(means[0])
         means[0] = mu * (rate.size + seen) / (rate.size + passed * mu)
     return [float(m) for m in means]
+
+
+def _demand_passed_today(state: UnitState, today: date, excess: int | None,
+                         profile: np.ndarray) -> float:
+    """Share of today's demand (by the clock profile) offered from midnight to ``as_of`` while
+    the unit could admit: the admissions already seen are a thinned sample of that part."""
+    start = pd.Timestamp(localize(datetime.combine(today, time(0)), state.tz))
+    grid = pd.date_range(start, state.as_of, freq=f"{OPEN_GRID_MINUTES}min", inclusive="left")
+    if grid.empty:
+        return 0.0
+    hour = np.asarray(grid.tz_convert(state.tz).hour, dtype=np.int64)
+    weight = profile[hour] * OPEN_GRID_MINUTES / 60.0
+    beds = state.beds_on(today)
+    if excess is None or beds is None:
+        return float(weight.sum())
+    is_open = _occupancy_at(state, np.asarray(grid.asi8, dtype=np.int64)) < beds + excess
+    return float(weight[is_open].sum())
 
 
 def excess_beds(arrivals: Mapping[str, Any]) -> int | None:

@@ -60,7 +60,7 @@ LEVEL_HALF_LIVES: tuple[float | None, ...] = (None, 14.0, 28.0, 56.0)
 LEVEL_PRIOR_DAYS = 7.0
 # Rolling origins: one a week over the last VALIDATION_ORIGINS weeks, each scoring the week
 # after it (the days a forecast faces).
-VALIDATION_ORIGINS = 8
+VALIDATION_ORIGINS = 13
 VALIDATION_HORIZON = 7
 OVERDISPERSION_LEVEL = 0.05
 # Days open to admissions for less than this share carry almost no information on the demand
@@ -338,21 +338,19 @@ def choose_demand_terms(days: Sequence[date], counts: npt.ArrayLike,
         return DemandChoice(False, None, (), 0)
     candidates = [(s, h) for s in ((False, True) if seasonal_ok else (False,))
                   for h in half_lives]
-    total = dict.fromkeys(candidates, 0.0)
-    scored_days = 0
+    per_day: dict[tuple[bool, float | None], list[float]] = {c: [] for c in candidates}
     for k in range(n_origins, 0, -1):
         cut = n - k * horizon
         ahead = slice(cut, cut + horizon)
         test = open_share[ahead] >= MIN_EXPOSURE
         if not test.any():
             continue
-        scored_days += int(test.sum())
         for seasonal in {s for s, _ in candidates}:
             means = _poisson_means(days[:cut], y[:cut], open_share[:cut], seasonal,
                                    days[ahead])
             for h in {h for s, h in candidates if s == seasonal}:
                 if means is None:
-                    total[(seasonal, h)] += -1e6
+                    per_day[(seasonal, h)].extend([-1e6] * int(test.sum()))
                     continue
                 fitted, forward = means
                 level = level_multiplier(y[:cut], fitted * open_share[:cut], h)
@@ -363,14 +361,24 @@ def choose_demand_terms(days: Sequence[date], counts: npt.ArrayLike,
                 else:
                     size = 1.0 / alpha
                     log_p = stats.nbinom.logpmf(observed, size, size / (size + mu))
-                total[(seasonal, h)] += float(np.sum(log_p))
-    if scored_days == 0:
+                per_day[(seasonal, h)].extend(float(v) for v in log_p)
+    if not per_day[candidates[0]]:
         return DemandChoice(False, None, (), 0)
-    scores = tuple((s, h, total[(s, h)] / scored_days) for s, h in candidates)
-    # Highest mean score; the candidates are listed simplest first, so max keeps the
-    # simplest among equals.
-    best = max(range(len(scores)), key=lambda i: (scores[i][2], -i))
-    return DemandChoice(scores[best][0], scores[best][1], scores, n_origins)
+    table = {c: np.asarray(v) for c, v in per_day.items()}
+    scores = tuple((s, h, float(table[(s, h)].mean())) for s, h in candidates)
+    best = max(candidates, key=lambda c: table[c].mean())
+    # The one-standard-error rule (Breiman, Friedman, Olshen & Stone 1984, Classification and
+    # Regression Trees, section 3.4.3; cited from memory): the simplest candidate whose mean
+    # score is within one standard error of the best's, the error of their paired daily
+    # differences. A few weeks of held-out days cannot tell small gains from noise, and a
+    # term chosen on noise costs accuracy later.
+    chosen = best
+    for candidate in candidates:  # simplest first: no season before season, no level first
+        gap = table[best] - table[candidate]
+        if gap.mean() <= gap.std(ddof=1) / math.sqrt(gap.size):
+            chosen = candidate
+            break
+    return DemandChoice(chosen[0], chosen[1], scores, n_origins)
 
 
 def hourly_profile(hours: npt.ArrayLike, *, prior: float = 1.0) -> npt.NDArray[np.float64]:

@@ -47,15 +47,21 @@ def test_level_is_the_ratio_of_pandas_ewm_means() -> None:
 
 
 def test_winter_rise_a_day_short_of_two_years_keeps_the_season() -> None:
-    # The history ends in November, while demand climbs towards its winter peak: a local
-    # level lags that climb, the annual curve does not.
+    # The history ends in November, while demand climbs towards its winter peak (twice the
+    # summer trough). The rule that needed two full years never tried the season here; the
+    # held-out weeks choose it in most histories (the one-standard-error rule keeps a simpler
+    # model when thirteen weeks cannot tell them apart).
     days = _days(2 * 365 - 1, start=date(2023, 11, 20))
-    choice = choose_demand_terms(days, _counts(days, 6.0, 2, winter=0.35))
-    assert choice.n_origins == 8
-    assert choice.seasonal
-    scores = {(s, h): v for s, h, v in choice.scores}
-    assert scores[(True, choice.level_half_life)] > max(
-        v for (s, _), v in scores.items() if not s)
+    choices = [choose_demand_terms(days, _counts(days, 6.0, seed, winter=0.35))
+               for seed in range(2, 22)]
+    assert all(c.n_origins == 13 for c in choices)
+    assert sum(c.seasonal for c in choices) >= 12  # 13 of 20 when measured
+
+
+def test_stationary_counts_rarely_get_a_season() -> None:
+    days = _days(2 * 365 - 1, start=date(2023, 11, 20))
+    choices = [choose_demand_terms(days, _counts(days, 6.0, seed)) for seed in range(2, 22)]
+    assert sum(c.seasonal for c in choices) <= 2  # 0 of 20 when measured
 
 
 def test_change_of_level_gets_a_local_level() -> None:

@@ -196,7 +196,7 @@ def test_the_page_starts_a_real_training_process_and_shows_it(
     # The new model's page says which demand patterns were chosen, and on what evidence.
     shown = manager.get("/units/KV-CRIT/model").text
     assert "Emergency demand: which patterns the forecast uses" in shown
-    assert "Chosen by replaying the last 8 weeks" in shown
+    assert "Chosen by replaying the last 13 weeks" in shown
     done_page = TestClient(app).get("/units/KV-CRIT/training", follow_redirects=False)
     assert done_page.status_code == 303  # signed out: sent to sign in, nothing shown
     db.get_engine(url).dispose()
