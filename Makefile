@@ -6,7 +6,7 @@ DB     ?= sqlite:///morrow.db
 HOST   ?= 127.0.0.1
 PORT   ?= 8000
 
-.PHONY: demo test bench lint venv install install-test serve demo-data clean
+.PHONY: demo test bench stress lint venv install install-test serve demo-data clean
 
 $(BIN)/python:
 	$(PYTHON) -m venv $(VENV)
@@ -40,6 +40,11 @@ test: install-test
 
 bench: install-test
 	bash .ci/postgres with $(BIN)/python -m pytest -q tests/benchmarks -s -p no:randomly
+
+# The stress units (tests/stress/generator.py), backtested through the command line; outside CI
+# (20-40 minutes). Results and the table go to stress-results/.
+stress: install-test
+	$(BIN)/python -m tests.stress.run --out stress-results
 
 lint: install-test
 	$(BIN)/ruff check app tests migrations

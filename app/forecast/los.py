@@ -1049,7 +1049,10 @@ def _select_groups(design: Design, stays: pd.DataFrame, cutoff_ns: int
     times = np.arange(1.0, 15.0)
     results: list[dict[str, Any]] = []
     n = int(fit_keep.sum())
-    usable = (val_keep.sum() >= 20 and later.days[val_keep].max() > times[-1]
+    # Scored are the validation stays within the fitted stays' follow-up; they must run past
+    # the last day scored (scikit-survival refuses times beyond the test data's follow-up).
+    in_range = y_val["time"] <= y_fit["time"].max()
+    usable = (int(in_range.sum()) >= 20 and y_val["time"][in_range].max() > times[-1]
               and y_fit["time"].max() > times[-1])
     for depth in GROUP_DEPTH_GRID:
         for share in (0.05,):
@@ -1060,7 +1063,6 @@ def _select_groups(design: Design, stays: pd.DataFrame, cutoff_ns: int
                 tree.fit(x_fit, y_fit)
                 funcs = tree.predict_survival_function(x_val)
                 est = np.vstack([f(np.minimum(times, f.x[-1])) for f in funcs])
-                in_range = y_val["time"] <= y_fit["time"].max()
                 score = float(integrated_brier_score(y_fit, y_val[in_range], est[in_range],
                                                      times))
             results.append({"max_depth": depth, "leaf_share": share, "val_ibs": score})

@@ -1,0 +1,158 @@
+"""The stress suite: generate the stress units, import them with the ``morrow`` command line into
+a fresh SQLite database, backtest each (rolling origin, retrained every 28 days on what was
+known then, Morrow beside the five baselines) and print one table.
+
+    .venv/bin/python -m tests.stress.run [--units ST-HDU ...] [--mornings 63] [--out DIR]
+
+``make stress`` runs it on every unit. Each unit's backtest JSON (and its calibration plot)
+goes to ``--out`` (default ``stress-results/``, ignored by git), with one forecast of the last
+morning checked against the contract by ``../shared/tools/check_forecast.py`` when that tool
+is there.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import math
+import os
+import subprocess
+import sys
+import tempfile
+import time
+from collections.abc import Sequence
+from datetime import date, timedelta
+from pathlib import Path
+from typing import Any
+
+from tests.stress.generator import EXTRACT_END, UNITS, describe, generate
+
+TIMEZONE = "Europe/London"   # the stress hospital's zone: naive CSV times are its wall clock
+KINDS = ("units", "stays", "observations", "bookings")
+BASELINES = ("yesterday", "same_weekday", "mean_stay", "one_distribution", "time_series")
+HORIZONS = 7
+# The last morning whose seven census instants all lie inside the extract.
+LAST_MORNING = EXTRACT_END - timedelta(days=HORIZONS + 2)
+CHECK_TOOL = Path(__file__).resolve().parents[2].parent / "shared" / "tools" / "check_forecast.py"
+
+
+def morrow(db_url: str, *args: str) -> str:
+    """Run the ``morrow`` command line of this environment; its standard output."""
+    command = [str(Path(sys.executable).with_name("morrow")), "--db", db_url, *args]
+    # One BLAS thread per process: the backtest's seasonal ARIMA baseline spends most of its
+    # time in small matrix solves, which multi-threaded BLAS slows on a busy machine (measured
+    # here on 2 shared cores: 6.4 s per fit with 2 threads, 1.05 s with 1).
+    env = {**os.environ, "MORROW_TIMEZONE": TIMEZONE, "OMP_NUM_THREADS": "1",
+           "OPENBLAS_NUM_THREADS": "1", "MKL_NUM_THREADS": "1"}
+    done = subprocess.run(command, capture_output=True, text=True, env=env, check=False)
+    if done.returncode != 0:
+        raise RuntimeError(f"{' '.join(command[1:])} exited {done.returncode}:\n"
+                           f"{done.stderr.strip()[-4000:]}")
+    return done.stdout
+
+
+def import_all(db_url: str, data: Path) -> None:
+    for kind in KINDS:
+        morrow(db_url, "import", kind, str(data / f"{kind}.csv"))
+
+
+def mornings(count: int) -> tuple[date, date]:
+    return LAST_MORNING - timedelta(days=count - 1), LAST_MORNING
+
+
+def backtest(db_url: str, unit: str, count: int, out: Path) -> dict[str, Any]:
+    start, end = mornings(count)
+    text = morrow(db_url, "backtest", "--unit", unit, "--from", start.isoformat(),
+                  "--to", end.isoformat(), "--json", "--plot", str(out / f"{unit}.png"))
+    result: dict[str, Any] = json.loads(text)
+    (out / f"{unit}.json").write_text(json.dumps(result, indent=1))
+    return result
+
+
+def forecast_last_morning(db_url: str, unit: str) -> str:
+    """Train on what was known at the last morning (08:00 local) and forecast from it."""
+    as_of = f"{LAST_MORNING.isoformat()}T08:00:00"
+    morrow(db_url, "train", "--unit", unit, "--until", as_of)
+    return morrow(db_url, "forecast", "--unit", unit, "--as-of", as_of, "--json")
+
+
+def check_with_tool(forecast_json: str) -> tuple[bool, str]:
+    done = subprocess.run([sys.executable, str(CHECK_TOOL), "--days", str(HORIZONS)],
+                          input=forecast_json, capture_output=True, text=True, check=False)
+    return done.returncode == 0, done.stdout.strip().splitlines()[-1] if done.stdout else ""
+
+
+def all_crps(result: dict[str, Any]) -> dict[str, float]:
+    return {m: float(v["all"]["crps"]) for m, v in result["methods"].items()}
+
+
+def table(results: dict[str, dict[str, Any]]) -> str:
+    """Units x horizons: mean CRPS of Morrow and of every baseline, the best baseline and
+    Morrow's ratio to it, and Morrow's randomised-PIT shares; an ``all`` row per unit."""
+    head = (f"{'unit':<9}{'h':>4}{'morrow':>9}" + "".join(f"{b[:12]:>13}" for b in BASELINES)
+            + f"  {'best baseline':<17}{'ratio':>6}{'pit80':>7}{'pit95':>7}{'n':>5}")
+    lines = [head, "-" * len(head)]
+    for unit, result in results.items():
+        rows = [(str(h + 1), {m: v["by_horizon"][h] for m, v in result["methods"].items()})
+                for h in range(result["days"])]
+        rows.append(("all", {m: v["all"] for m, v in result["methods"].items()}))
+        for label, scores in rows:
+            best = min(BASELINES, key=lambda b: scores[b]["crps"])
+            ratio = scores["morrow"]["crps"] / scores[best]["crps"]
+            lines.append(f"{unit:<9}{label:>4}{scores['morrow']['crps']:>9.3f}"
+                         + "".join(f"{scores[b]['crps']:>13.3f}" for b in BASELINES)
+                         + f"  {best:<17}{ratio:>6.3f}{scores['morrow']['pit_80']:>7.3f}"
+                         + f"{scores['morrow']['pit_95']:>7.3f}{scores['morrow']['n']:>5}")
+        lines.append("")
+    lines.append("CRPS: mean ranked probability score in beds (lower is better); ratio: Morrow / "
+                 "best baseline at that horizon; pit80, pit95: Morrow's share of randomised PIT "
+                 "in [0.1, 0.9] (target 0.80) and [0.025, 0.975] (target 0.95).")
+    return "\n".join(lines)
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    parser = argparse.ArgumentParser(description="Backtest the stress units.")
+    parser.add_argument("--units", nargs="*", default=[u.code for u in UNITS])
+    parser.add_argument("--mornings", type=int, default=63)
+    parser.add_argument("--out", type=Path, default=Path("stress-results"))
+    args = parser.parse_args(argv)
+    args.out.mkdir(parents=True, exist_ok=True)
+    results: dict[str, dict[str, Any]] = {}
+    failures: list[str] = []
+    with tempfile.TemporaryDirectory(prefix="morrow-stress-") as work:
+        data = generate(Path(work) / "data", args.units)
+        print(describe(data).to_string(index=False), flush=True)
+        db_url = f"sqlite:///{Path(work) / 'stress.db'}"
+        import_all(db_url, data)
+        for unit in args.units:
+            began = time.perf_counter()
+            start, end = mornings(args.mornings)
+            print(f"{unit}: backtest {start} .. {end} ...", flush=True)
+            try:
+                results[unit] = backtest(db_url, unit, args.mornings, args.out)
+                forecast = forecast_last_morning(db_url, unit)
+            except RuntimeError as exc:
+                failures.append(f"{unit}: {exc}")
+                print(f"{unit}: FAILED\n{exc}", flush=True)
+                continue
+            (args.out / f"{unit}-forecast.json").write_text(forecast)
+            verdict = "tool not found"
+            if CHECK_TOOL.exists():
+                ok, last = check_with_tool(forecast)
+                verdict = f"{'ok' if ok else 'PROBLEMS'} ({last})"
+            crps = all_crps(results[unit])
+            finite = all(math.isfinite(v) for v in crps.values())
+            print(f"{unit}: done in {time.perf_counter() - began:.0f} s; all-horizon CRPS "
+                  f"finite: {finite}; forecast of {LAST_MORNING} by check_forecast.py: {verdict}",
+                  flush=True)
+    text = table(results)
+    (args.out / "table.txt").write_text(text + "\n")
+    print()
+    print(text)
+    for failure in failures:
+        print(f"FAILED {failure}")
+    return 1 if failures else 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
