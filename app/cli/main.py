@@ -13,10 +13,14 @@ from typing import Any
 
 from sqlalchemy.orm import Session
 
+from app import bounds
 from app.cli import plan, users
+from app.cli.args import unit_code as unit_code_arg
 from app.config import current_time, get_settings
-from app.ingest import KINDS, ImportRefused, import_file
+from app.ingest import KINDS, ImportRefused
+from app.ingest.retried import ImportTimedOut, import_once
 from app.store import db, repo
+from app.time_limits import WorkCancelled, command_limit
 from app.timeutil import parse_timestamp
 
 EXIT_OK, EXIT_ERROR, EXIT_BAD_INPUT = 0, 1, 2
@@ -41,12 +45,16 @@ def cmd_import(args: argparse.Namespace) -> int:
         raise BadInput(f"{path}: no such file")
     data = path.read_bytes()
     try:
-        with db.session_scope(args.db) as session:
-            result = import_file(session, args.kind, data, path.name, tz=get_settings().tz,
-                                 actor=os.environ.get("USER", "cli"))
+        # Run again when another import of the same rows committed first: it then finds
+        # them stored and reports them unchanged, instead of failing on the unique key.
+        result = import_once(args.db, args.kind, data, path.name, tz=get_settings().tz,
+                             actor=os.environ.get("USER", "cli"))
     except ImportRefused as refused:
         print(refused.summary(), file=sys.stderr)
         return EXIT_BAD_INPUT
+    except ImportTimedOut as late:
+        print(f"error: {late}", file=sys.stderr)
+        return EXIT_ERROR
     for warning in result.warnings:
         print(f"warning: {warning}", file=sys.stderr)
     print(result.summary())
@@ -69,11 +77,16 @@ def cmd_demo_load(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
-def _instant(text: str) -> datetime:
+def _instant(text: str, option: str) -> datetime:
     try:
-        return parse_timestamp(text, get_settings().tz)
+        moment = parse_timestamp(text, get_settings().tz)
     except ValueError:
-        raise BadInput(f"{text!r} is not an ISO 8601 timestamp (e.g. 2026-03-02T08:00)") from None
+        raise BadInput(f"{option} {text!r} is not an ISO 8601 timestamp (e.g. 2026-03-02T08:00)"
+                       ) from None
+    try:
+        return bounds.check_as_of(moment, option)
+    except bounds.OutOfBounds as exc:
+        raise BadInput(str(exc)) from None
 
 
 def _known_unit(session: Session, unit: str) -> None:
@@ -85,12 +98,16 @@ def _known_unit(session: Session, unit: str) -> None:
 def cmd_train(args: argparse.Namespace) -> int:
     from app.forecast.los import format_metrics
     from app.forecast.service import train_model
+    from app.forecast.training_data import TooLittleHistory
 
-    until = _instant(args.until) if args.until else datetime.now(UTC)
+    until = _instant(args.until, "--until") if args.until else datetime.now(UTC)
     with db.session_scope(args.db) as session:
         _known_unit(session, args.unit)
         print(f"training {args.unit} on what was known at {until.isoformat()} ...", flush=True)
-        model_id, payload = train_model(session, args.unit, until, get_settings().tz)
+        try:
+            model_id, payload = train_model(session, args.unit, until, get_settings().tz)
+        except TooLittleHistory as exc:  # the remedy is more history or a later --until
+            raise BadInput(str(exc)) from None
     print(format_metrics(payload["metrics"]))
     print(f"stored model {model_id}")
     return EXIT_OK
@@ -99,12 +116,12 @@ def cmd_train(args: argparse.Namespace) -> int:
 def cmd_forecast(args: argparse.Namespace) -> int:
     from app.forecast.service import NoModel, forecast
 
-    instants = [_instant(t) for t in args.as_of] or [datetime.now(UTC)]
+    instants = [_instant(t, "--as-of") for t in args.as_of] or [datetime.now(UTC)]
     tz = get_settings().tz
-    if args.days < 1:
-        raise BadInput(f"--days must be at least 1, got {args.days}")
+    _forecast_days(args.days)
     results = []
-    with db.session_scope(args.db) as session:
+    with db.session_scope(args.db) as session, command_limit("The forecast",
+                                                             "Try fewer --days or --as-of."):
         _known_unit(session, args.unit)
         for at in instants:  # all of them first: one failure prints nothing
             try:
@@ -118,6 +135,13 @@ def cmd_forecast(args: argparse.Namespace) -> int:
     for result in results:
         print(render_forecast_table(result))
     return EXIT_OK
+
+
+def _forecast_days(days: int) -> None:
+    try:
+        bounds.check_forecast_days(days, "--days")
+    except bounds.OutOfBounds as exc:
+        raise BadInput(str(exc)) from None
 
 
 def render_forecast_table(result: dict[str, Any]) -> str:
@@ -146,6 +170,14 @@ def cmd_backtest(args: argparse.Namespace) -> int:
         start, end = parse_date(args.start), parse_date(args.end)
     except ValueError:
         raise BadInput("--from and --to take dates YYYY-MM-DD") from None
+    _forecast_days(args.days)
+    latest = (datetime.now(UTC) + bounds.AS_OF_AHEAD).date()
+    try:
+        bounds.check_date(start, "--from", latest=latest)
+        bounds.check_date(end, "--to", latest=latest)
+        bounds.check_date_range(start, end)
+    except bounds.OutOfBounds as exc:
+        raise BadInput(str(exc)) from None
     with db.session_scope(args.db) as session:
         _known_unit(session, args.unit)
         result = run_backtest(session, args.unit, start, end, get_settings().tz, days=args.days,
@@ -219,6 +251,11 @@ def cmd_demo_now(args: argparse.Namespace) -> int:
 # 5 s, kills workers that are only slow: busy computing forecasts on a loaded machine, the
 # answer waits for the interpreter lock, and the requests in flight on them fail).
 WORKER_HEALTHCHECK_S = 60
+# On SIGTERM uvicorn waits for running requests; by default for ever, so one long planning
+# request kept the server up for minutes. After this wait it cancels them and the app's
+# lifespan end stops their computation (app/web/limits.py), so the process exits within
+# seconds.
+GRACEFUL_SHUTDOWN_S = 3
 
 
 def cmd_serve(args: argparse.Namespace) -> int:
@@ -234,12 +271,14 @@ def cmd_serve(args: argparse.Namespace) -> int:
     if args.workers == 1:
         from app.web.app import create_app
 
-        uvicorn.run(create_app(args.db), host=args.host, port=args.port, log_level="warning")
+        uvicorn.run(create_app(args.db), host=args.host, port=args.port, log_level="warning",
+                    timeout_graceful_shutdown=GRACEFUL_SHUTDOWN_S)
         return EXIT_OK
     _prepare_workers(args.db)
     uvicorn.run("app.web.app:create_app", factory=True, workers=args.workers, host=args.host,
                 port=args.port, log_level="warning",
-                timeout_worker_healthcheck=WORKER_HEALTHCHECK_S)
+                timeout_worker_healthcheck=WORKER_HEALTHCHECK_S,
+                timeout_graceful_shutdown=GRACEFUL_SHUTDOWN_S)
     return EXIT_OK
 
 
@@ -290,24 +329,26 @@ def build_parser() -> argparse.ArgumentParser:
                        ).set_defaults(func=cmd_demo_now)
 
     p = sub.add_parser("train", help="fit the unit's length-of-stay and arrivals models")
-    p.add_argument("--unit", required=True)
+    p.add_argument("--unit", required=True, type=unit_code_arg)
     p.add_argument("--until", default=None,
                    help="use only what was known at this instant (default: now)")
     p.set_defaults(func=cmd_train)
 
     p = sub.add_parser("forecast", help="occupancy at the next census instants")
-    p.add_argument("--unit", required=True)
+    p.add_argument("--unit", required=True, type=unit_code_arg)
     p.add_argument("--as-of", action="append", default=[], dest="as_of",
                    help="forecast from this instant (repeatable: JSON Lines; default: now)")
-    p.add_argument("--days", type=int, default=7)
+    p.add_argument("--days", type=int, default=7, help=f"census instants ahead, "
+                   f"{bounds.MIN_FORECAST_DAYS} to {bounds.MAX_FORECAST_DAYS} (default 7)")
     p.add_argument("--json", action="store_true", help="the contract's JSON (format 1)")
     p.set_defaults(func=cmd_forecast)
 
     p = sub.add_parser("backtest", help="score past forecasts against the census that followed")
-    p.add_argument("--unit", required=True)
+    p.add_argument("--unit", required=True, type=unit_code_arg)
     p.add_argument("--from", dest="start", required=True)
     p.add_argument("--to", dest="end", required=True)
-    p.add_argument("--days", type=int, default=7)
+    p.add_argument("--days", type=int, default=7, help=f"census instants ahead, "
+                   f"{bounds.MIN_FORECAST_DAYS} to {bounds.MAX_FORECAST_DAYS} (default 7)")
     p.add_argument("--plot", default=None, help="where to save the calibration plot (PNG)")
     p.add_argument("--json", action="store_true")
     p.set_defaults(func=cmd_backtest)
@@ -336,6 +377,9 @@ def main(argv: Sequence[str] | None = None) -> int:
         print(f"error: {exc}", file=sys.stderr)
         return EXIT_BAD_INPUT
     except KeyboardInterrupt:
+        return EXIT_ERROR
+    except WorkCancelled as exc:  # past MORROW_COMMAND_SECONDS: the message says what to try
+        print(f"error: {exc.message}", file=sys.stderr)
         return EXIT_ERROR
     except Exception as exc:  # the last line of defence: a message, not a trace
         print(f"error: {type(exc).__name__}: {exc}", file=sys.stderr)

@@ -78,7 +78,7 @@ def _columns(kind: str, tz: ZoneInfo) -> list[Column]:
     ]
     if kind == "units":
         return [
-            Column("unit", True, p.identifier),
+            Column("unit", True, p.unit_code),
             Column("beds", True, p.integer(0, 10_000)),
             Column("valid_from", False, p.day),
             Column("census_time", False, p.clock),
@@ -86,7 +86,7 @@ def _columns(kind: str, tz: ZoneInfo) -> list[Column]:
     if kind == "stays":
         return [
             Column("stay_id", True, p.identifier),
-            Column("unit", True, p.identifier),
+            Column("unit", True, p.unit_code),
             Column("admitted_at", True, ts),
             Column("discharged_at", False, ts),
             Column("admission_type", True, p.one_of(*ADMISSION_TYPES)),
@@ -97,7 +97,7 @@ def _columns(kind: str, tz: ZoneInfo) -> list[Column]:
     if kind == "census":
         return [
             Column("taken_at", True, ts),
-            Column("unit", True, p.identifier),
+            Column("unit", True, p.unit_code),
             Column("bed", False, p.identifier),
             Column("stay_id", True, p.identifier),
             Column("admitted_at", True, ts),
@@ -116,7 +116,7 @@ def _columns(kind: str, tz: ZoneInfo) -> list[Column]:
     if kind == "bookings":
         return [
             Column("booking_id", True, p.identifier),
-            Column("unit", True, p.identifier),
+            Column("unit", True, p.unit_code),
             Column("booked_at", True, ts),
             Column("planned_date", True, p.day),
             *covariates,
@@ -507,32 +507,39 @@ def _observations_check(session: Session, sheet: Sheet) -> Rows:
         if key in seen:
             first, value = seen[key]
             if value != row["value"]:
+                # Lines of one file carry no order of entry: which value is meant is unknown.
                 sheet.problem(line, "value", row["value"],
-                              f"another value for this stay, time and name recorded at the same "
-                              f"instant is at line {first}; a correction needs a later recorded_at")
+                              f"line {first} gives another value for this stay, name, observed_at "
+                              "and recorded_at; keep one of the two lines")
             continue
         seen[key] = (line, row["value"])
         keys_by_stay[row["stay_id"]].append((line, row))
     for part in chunked(sorted(keys_by_stay), 500):
-        stored = {(o.stay_id, o.observed_at, o.name, o.recorded_at): o.value
-                  for o in session.scalars(select(Observation).where(
-                      Observation.stay_id.in_(part)))}
+        # The latest revision of each key: a value equal to it is already stored; any other
+        # value is a correction entered now, so it takes the next revision (a clock read to
+        # the second, or a fixed replay clock, gives a correction the same recorded_at).
+        stored: dict[tuple[Any, ...], tuple[int, float]] = {}
+        for o in session.execute(select(
+                Observation.stay_id, Observation.observed_at, Observation.name,
+                Observation.recorded_at, Observation.revision, Observation.value)
+                .where(Observation.stay_id.in_(part))
+                .order_by(Observation.revision)):
+            stored[(o.stay_id, o.observed_at, o.name, o.recorded_at)] = (o.revision, o.value)
         for stay_id in part:
             for line, row in keys_by_stay[stay_id]:
                 key = (stay_id, row["observed_at"], row["name"], row["recorded_at"])
                 if key not in stored:
-                    fresh.append((line, row))
-                elif stored[key] != row["value"]:
-                    sheet.problem(line, "value", row["value"],
-                                  f"stored as {stored[key]:g} with the same recorded_at; "
-                                  "a correction needs a later recorded_at")
+                    fresh.append((line, {**row, "revision": 0}))
+                elif stored[key][1] != row["value"]:
+                    fresh.append((line, {**row, "revision": stored[key][0] + 1}))
     return fresh
 
 
 def _observations_apply(session: Session, fresh: Rows, batch_id: int, actor: str,
                         result: ImportResult) -> None:
     rows = [{"stay_id": r["stay_id"], "observed_at": r["observed_at"], "name": r["name"],
-             "value": r["value"], "recorded_at": r["recorded_at"], "batch_id": batch_id}
+             "value": r["value"], "recorded_at": r["recorded_at"], "revision": r["revision"],
+             "batch_id": batch_id}
             for _, r in fresh]
     for part in chunked(rows, 5000):
         session.execute(insert(Observation), part)

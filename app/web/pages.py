@@ -5,18 +5,21 @@ from __future__ import annotations
 import csv
 import io
 import json
+import os
 from datetime import date, datetime, timedelta
-from typing import Annotated, Any
+from typing import Annotated, Any, BinaryIO
 
 from fastapi import APIRouter, File, Form, HTTPException, Query, Request, UploadFile
 from fastapi.responses import HTMLResponse, RedirectResponse, Response
 from sqlalchemy import select
 
+from app import bounds
 from app.config import current_time, get_settings
 from app.forecast.booking_check import Candidate, booking_check
 from app.forecast.service import model_for
-from app.ingest import KINDS, ImportRefused, import_file
+from app.ingest import KINDS, ImportRefused, Problem, import_file
 from app.ingest.importer import SCORE_RANGES
+from app.ingest.retried import IMPORT_TIME_LIMIT_S, ImportTimedOut, import_once
 from app.store import repo
 from app.store.models import ImportBatch
 from app.web import figures
@@ -175,9 +178,12 @@ def booking_page(request: Request, unit: str, session: SessionDep, actor: ReadAc
                                         "specialty": specialty, "procedure": procedure},
                                "today": shown.state.as_of.tz_convert(shown.state.tz).date()}
     if planned_date is not None and shown.forecast is not None:
-        today = context["today"]
-        if planned_date < today or planned_date > today + timedelta(days=60):
-            context["message"] = "choose a planned date from today to 60 days ahead"
+        try:
+            bounds.check_booking_date(planned_date, context["today"])
+        except bounds.OutOfBounds as exc:
+            context["message"] = str(exc)
+            return templates.TemplateResponse(request, "booking.html", context,
+                                              status_code=422)
         else:
             record = model_for(session, unit, shown.state.as_of.to_pydatetime())
             result = booking_check(shown.state, record, Candidate(
@@ -204,6 +210,10 @@ def book(unit: str, session: SessionDep, actor: BookingsActor,
     _unit_or_404(session, unit)
     booking_id = f"B-{secrets.token_hex(4)}"
     now = current_time().replace(microsecond=0)
+    try:
+        bounds.check_booking_date(planned_date, now.astimezone(get_settings().tz).date())
+    except bounds.OutOfBounds as exc:
+        raise HTTPException(status_code=422, detail=f"not booked: {exc}") from None
     data = _one_row_csv(["booking_id", "unit", "booked_at", "planned_date", "age", "specialty",
                          "procedure"],
                         [booking_id, unit, now.isoformat(), planned_date.isoformat(), age.strip(),
@@ -213,11 +223,20 @@ def book(unit: str, session: SessionDep, actor: BookingsActor,
                     actor=actor.username)
     except ImportRefused as refused:
         why = "; ".join(f"{p.column}: {p.why}" for p in refused.problems)
-        return RedirectResponse(f"/units/{unit}/booking?message=not booked: {why}", 303)
-    return RedirectResponse(
-        f"/units/{unit}/booking?message=booked {booking_id} for {planned_date.isoformat()}"
-        f"&planned_date={planned_date.isoformat()}&age={age}&specialty={specialty}"
-        f"&procedure={procedure}", status_code=303)
+        return _booking_redirect(unit, {"message": f"not booked: {why}"})
+    return _booking_redirect(unit, {
+        "message": f"booked {booking_id} for {planned_date.isoformat()}",
+        "planned_date": planned_date.isoformat(), "age": age.strip(),
+        "specialty": specialty.strip(), "procedure": procedure.strip()})
+
+
+def _booking_redirect(unit: str, fields: dict[str, str]) -> RedirectResponse:
+    """Back to the booking form; each value is encoded, so '&', '=' or '#' typed into a field
+    stays inside that field instead of adding or overriding other parameters."""
+    from urllib.parse import quote, urlencode
+
+    query = urlencode({name: value for name, value in fields.items() if value})
+    return RedirectResponse(f"/units/{quote(unit, safe='')}/booking?{query}", status_code=303)
 
 
 @router.get("/data", response_class=HTMLResponse)
@@ -238,17 +257,47 @@ def _render_data(request: Request, session: SessionDep, problems: Any, result: A
 
 
 @router.post("/data/upload", response_class=HTMLResponse)
-async def upload(request: Request, session: SessionDep, actor: DataActor,
-                 kind: Annotated[str, Form()], file: Annotated[UploadFile, File()]) -> Response:
-    """One CSV file, imported whole or not at all."""
+def upload(request: Request, session: SessionDep, actor: DataActor,
+           kind: Annotated[str, Form()], file: Annotated[UploadFile, File()]) -> Response:
+    """One CSV file, imported whole or not at all.
+
+    A plain ``def``, so FastAPI runs it in a worker thread: an import takes seconds for a
+    large file (longer while another writer holds the lock) and must not hold up the
+    requests of everyone else. The import commits in a transaction of its own
+    (``import_once``), run again if an identical upload got in first, before this answers.
+    """
     if kind not in KINDS:
         raise HTTPException(status_code=422, detail=f"kind must be one of {', '.join(KINDS)}")
-    data = await file.read()
     name = (file.filename or f"{kind}.csv")[:200]
+    limit = get_settings().max_upload_bytes
+    data = _read_within(file.file, limit)
+    if data is None:
+        why = (f"the file is larger than the upload limit of {limit / 1_000_000:.3g} MB "
+               "(setting MORROW_MAX_UPLOAD_BYTES); split it and upload the parts")
+        return _render_data(request, session, [Problem(name, None, None, None, why)], None,
+                            kind, status=413)
     try:
-        result = import_file(session, kind, data, name, tz=get_settings().tz,
-                             actor=actor.username)
+        # Within the request's own time limit, so the page answers before it is given up on.
+        result = import_once(request.app.state.database_url, kind, data, name,
+                             tz=get_settings().tz, actor=actor.username,
+                             limit_s=min(IMPORT_TIME_LIMIT_S, get_settings().request_seconds))
     except ImportRefused as refused:
-        session.rollback()
         return _render_data(request, session, refused.problems, None, kind, status=422)
+    except ImportTimedOut as late:
+        return _render_data(request, session, [Problem(name, None, None, None, str(late))],
+                            None, kind, status=503)
     return _render_data(request, session, None, result, kind)
+
+
+def _read_within(file: BinaryIO, limit: int) -> bytes | None:
+    """The uploaded file's bytes, or None when it is larger than ``limit``.
+
+    The form parser has already spooled the file to disk in chunks; its size is looked up
+    before reading, so a file over the limit is never read, and one within it is held in
+    memory once.
+    """
+    size = file.seek(0, os.SEEK_END)
+    if size > limit:
+        return None
+    file.seek(0)
+    return file.read()

@@ -1,0 +1,86 @@
+"""The real app under uvicorn in a background thread, on a free loopback port, and a way
+to read the database from a connection of the test's own (invented unit, stays, users).
+
+In-process, so a test can slow a commit down (monkeypatch) and see what a client is told
+before the commit ends.
+"""
+
+from __future__ import annotations
+
+import socket
+import threading
+from collections.abc import Iterator
+from contextlib import contextmanager
+from datetime import UTC, datetime, timedelta
+
+import httpx2 as httpx
+import uvicorn
+from fastapi import FastAPI
+from sqlalchemy import Engine, create_engine
+from sqlalchemy.engine import make_url
+from sqlalchemy.pool import NullPool
+
+from app.ingest import import_file
+from app.store import db
+from app.web.security import SESSION_COOKIE, _token
+from tests.conftest import UTC_ZONE
+from tests.security.fixtures import form_csrf
+
+UNIT = "RW-EAST"
+STAYS = 30
+
+
+@contextmanager
+def serving(app: FastAPI) -> Iterator[str]:
+    """``app`` answering on 127.0.0.1; yields its base URL, stops it on leaving."""
+    sock = socket.socket()
+    sock.bind(("127.0.0.1", 0))
+    # Listening before uvicorn starts: a client's first connection waits in the backlog.
+    sock.listen(128)
+    port = sock.getsockname()[1]
+    server = uvicorn.Server(uvicorn.Config(app, log_level="warning", lifespan="off"))
+    thread = threading.Thread(target=server.run, kwargs={"sockets": [sock]}, daemon=True)
+    thread.start()
+    try:
+        yield f"http://127.0.0.1:{port}"
+    finally:
+        server.should_exit = True
+        thread.join(timeout=30)
+        sock.close()
+
+
+def own_engine(url: str) -> Engine:
+    """An engine of the test's own (not the server's pooled one): its reads see only what
+    another connection would see, that is, what is committed."""
+    parsed = make_url(url)
+    if parsed.drivername == "postgresql":
+        parsed = parsed.set(drivername="postgresql+psycopg")
+    return create_engine(parsed, poolclass=NullPool)
+
+
+def seed_unit(url: str) -> datetime:
+    """A unit with STAYS patients in it now; returns the admission time used."""
+    admitted = (datetime.now(UTC) - timedelta(days=2)).replace(minute=0, second=0,
+                                                              microsecond=0)
+    stays = "".join(f"S-{i:03d},{UNIT},{admitted.isoformat()},emergency\n"
+                    for i in range(STAYS))
+    with db.session_scope(url) as session:
+        import_file(session, "units", f"unit,beds\n{UNIT},40\n".encode(), "units.csv",
+                    tz=UTC_ZONE)
+        import_file(session, "stays", f"stay_id,unit,admitted_at,admission_type\n{stays}"
+                    .encode(), "stays.csv", tz=UTC_ZONE)
+    return admitted
+
+
+def sign_in(client: httpx.Client, username: str, password: str) -> httpx.Response:
+    """Sign in through the form, as a browser does; the client keeps the session cookie."""
+    page = client.get("/signin")
+    return client.post("/signin", data={"username": username, "password": password,
+                                        "csrf_token": form_csrf(page.text), "next": "/"})
+
+
+def csrf_for(app: FastAPI, client: httpx.Client) -> str:
+    """The CSRF token a page would render for this client's session."""
+    cookie = client.cookies.get(SESSION_COOKIE)
+    assert cookie, "the client is not signed in"
+    return _token(app.state.csrf_key, "session", cookie)
