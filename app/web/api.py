@@ -4,12 +4,14 @@ from __future__ import annotations
 
 from typing import Annotated, Any
 
-from fastapi import APIRouter, HTTPException, Query
+from fastapi import APIRouter, HTTPException, Query, Request
 from pydantic import BaseModel, Field
 
+from app import bounds
 from app.config import current_time, get_settings
 from app.forecast.service import NoModel, forecast
-from app.ingest import ImportRefused, import_file
+from app.ingest import ImportRefused
+from app.ingest.retried import ImportTimedOut, import_once
 from app.store import repo
 from app.timeutil import parse_timestamp
 from app.web.deps import SessionDep
@@ -32,7 +34,9 @@ def units(session: SessionDep, actor: ReadActor) -> list[dict[str, Any]]:
 @router.get("/units/{unit}/forecast")
 def unit_forecast(unit: str, session: SessionDep, actor: ReadActor,
                   as_of: str | None = None,
-                  days: Annotated[int, Query(ge=1, le=28)] = 7) -> dict[str, Any]:
+                  days: Annotated[int, Query(ge=bounds.MIN_FORECAST_DAYS,
+                                             le=bounds.MAX_FORECAST_DAYS)] = 7
+                  ) -> dict[str, Any]:
     """The forecast JSON (format 1) from ``as_of`` (default: now) for the next ``days``."""
     if repo.get_unit(session, unit) is None:
         raise HTTPException(status_code=404, detail=f"unit {unit} is not known")
@@ -47,6 +51,10 @@ def unit_forecast(unit: str, session: SessionDep, actor: ReadActor,
         raise HTTPException(status_code=422,
                             detail=f"as_of {as_of!r} is not an ISO 8601 timestamp") from None
     try:
+        bounds.check_as_of(moment, "as_of")
+    except bounds.OutOfBounds as exc:
+        raise HTTPException(status_code=422, detail=str(exc)) from None
+    try:
         return forecast(session, unit, moment, get_settings().tz, days=days)
     except NoModel as exc:
         raise HTTPException(status_code=409, detail=str(exc)) from None
@@ -55,14 +63,20 @@ def unit_forecast(unit: str, session: SessionDep, actor: ReadActor,
 class ScoreIn(BaseModel):
     stay_id: str = Field(min_length=1, max_length=64)
     name: str = Field(min_length=1, max_length=64)
-    value: float
+    # A JSON number only (its grammar has ASCII digits alone): a string would be read by
+    # Python's float(), which takes "1_2" as 12.
+    value: float = Field(strict=True, allow_inf_nan=False)
     observed_at: str | None = None
 
 
 @router.post("/units/{unit}/observations", status_code=201)
-def post_observation(unit: str, body: ScoreIn, session: SessionDep,
+def post_observation(request: Request, unit: str, body: ScoreIn, session: SessionDep,
                      actor: ScoresActor) -> dict[str, Any]:
-    """Record one score or flag; returns that stay's updated prediction."""
+    """Record one score or flag; returns that stay's updated prediction.
+
+    The score is committed in a transaction of its own before the prediction is computed:
+    inside one, SQLite's write lock was held while the forecast was worked out (and while
+    this request waited for another page's forecast), and every other writer waited."""
     if repo.get_unit(session, unit) is None:
         raise HTTPException(status_code=404, detail=f"unit {unit} is not known")
     now = current_time().replace(microsecond=0)
@@ -72,13 +86,14 @@ def post_observation(unit: str, body: ScoreIn, session: SessionDep,
     if not repo.stay_in_unit(session, unit, body.stay_id, now):
         raise HTTPException(status_code=422, detail=f"{body.stay_id} is not in {unit} now")
     try:
-        import_file(session, "observations", data, "api", tz=get_settings().tz,
-                    actor=actor.username)
+        import_once(request.app.state.database_url, "observations", data, "api",
+                    tz=get_settings().tz, actor=actor.username)
     except ImportRefused as refused:
         raise HTTPException(status_code=422, detail=[
             {"column": p.column, "value": p.value, "why": p.why}
             for p in refused.problems]) from None
-    session.flush()
+    except ImportTimedOut as late:
+        raise HTTPException(status_code=503, detail=str(late)) from None
     shown = current(session, unit)
     stay = next((s for s in (shown.forecast or {}).get("stays", [])
                  if s["stay_id"] == body.stay_id), None)

@@ -14,6 +14,7 @@ from app.config import PROJECT_ROOT, get_settings
 from app.store import db, repo
 from app.web import (
     api,
+    busy,
     forecasts,
     limits,
     model_page,
@@ -45,6 +46,7 @@ def create_app(database_url: str | None = None) -> FastAPI:
     app.state.database_url = url
     app.mount("/static", StaticFiles(directory=str(PROJECT_ROOT / "static")), name="static")
     security.install(app)
+    busy.install(app)
     limits.install(app)  # added last, so it runs first: the limit covers the whole request
     app.include_router(routes_auth.router)
     app.include_router(routes_audit.router)

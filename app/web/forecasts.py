@@ -18,7 +18,7 @@ from dataclasses import dataclass, field
 from datetime import UTC, datetime, timedelta
 from typing import Any
 
-from sqlalchemy.exc import IntegrityError
+from sqlalchemy.exc import IntegrityError, OperationalError
 from sqlalchemy.orm import Session
 
 from app.config import current_time, get_settings
@@ -34,6 +34,7 @@ from app.forecast.service import (
 )
 from app.state import UnitState, load_state, with_current_observations
 from app.store import repo
+from app.store.retry import is_busy
 
 CACHE_SIZE = 64
 
@@ -140,15 +141,25 @@ def _remember(key: tuple[Any, ...], shown: Shown) -> None:
 def _store_now_and_then(session: Session, forecast: dict[str, Any] | None,
                         key: tuple[Any, ...], moment: datetime) -> None:
     """Store the first forecast of each clock hour per unit and model. Several workers may
-    try at once: the database keeps one (a unique index) and the others step back."""
+    try at once: the database keeps one (a unique index) and the others step back.
+
+    It is stored in a transaction of its own on a second connection, committed at once: in
+    the page's session the INSERT held SQLite's write lock until the page was rendered (on
+    the home page, through every other unit's forecast), and every writer waited. Only pages
+    call this, and they have written nothing before, so the second connection never waits
+    for a lock its own request holds. A busy database skips it: the next view stores it."""
     if forecast is None:
         return
     hour = moment.replace(minute=0, second=0, microsecond=0)
     if _stored.get(key) == hour:
         return
     try:
-        with session.begin_nested():
-            store_forecast(session, forecast, origin="page", hour=hour)
+        with Session(session.get_bind()) as own, own.begin():
+            store_forecast(own, forecast, origin="page", hour=hour)
     except IntegrityError:
         pass  # this hour's forecast is stored already
+    except OperationalError as exc:
+        if not is_busy(exc):
+            raise
+        return
     _stored[key] = hour
