@@ -331,19 +331,6 @@ def _stay_ends(stays: pd.DataFrame, as_of_ns: int) -> tuple[IntArray, IntArray,
     return admitted, end, ended
 
 
-def extract_start_ns(stays: pd.DataFrame, as_of_ns: int) -> int | None:
-    """When the extract's record of stays begins: its first discharge known at ``as_of_ns``.
-
-    An extract of stays holds those discharged since some day plus the stays then in
-    progress; stays admitted before its first recorded discharge are only the ones that
-    lasted until then (left truncation), the same reading as the arrivals' window
-    (``app.forecast.arrivals._window``). None when no stay has ended yet.
-    """
-    discharged = _ns(stays["discharged_at"].dropna())
-    discharged = discharged[discharged <= as_of_ns]
-    return int(discharged.min()) if discharged.size else None
-
-
 def observation_names(state: UnitState) -> list[str]:
     """Observation names recorded for the unit's stays, sorted."""
     if state.observations.empty:
@@ -354,13 +341,7 @@ def observation_names(state: UnitState) -> list[str]:
 def build_landmarks(state: UnitState, *, landmark_clock: time = LANDMARK_CLOCK,
                     names: Sequence[str] | None = None) -> Landmarks:
     """Landmarks of every stay of the state: each ``landmark_clock`` local time it was in the
-    unit from the extract's start (:func:`extract_start_ns`) up to ``state.as_of`` (stays still
-    in are censored there, never dropped).
-
-    Before the extract's start only the stays that lasted into it are on record, so a
-    landmark there would see survivors only; from the start on, every stay in the unit is
-    seen, whenever it was admitted, and a landmark conditions on being in the unit anyway.
-    """
+    unit, up to ``state.as_of`` (stays still in are censored there, never dropped)."""
     stays = state.stays.reset_index(drop=True)
     names = observation_names(state) if names is None else list(names)
     as_of_ns = int(_ns([state.as_of])[0])
@@ -375,9 +356,7 @@ def build_landmarks(state: UnitState, *, landmark_clock: time = LANDMARK_CLOCK,
                      state.tz)
     # A stay is in at landmark s when admitted <= s < end (present means discharged after s);
     # a landmark at the cut-off itself has no time at risk left.
-    start_ns = extract_start_ns(stays, as_of_ns)
-    seen_from = admitted if start_ns is None else np.maximum(admitted, start_ns)
-    first = np.searchsorted(axis.landmark_ns, seen_from, side="left")
+    first = np.searchsorted(axis.landmark_ns, admitted, side="left")
     last = np.searchsorted(axis.landmark_ns, end, side="left")
     counts = np.maximum(last - first, 0)
     stay_index = np.repeat(np.arange(len(stays)), counts)
@@ -845,13 +824,11 @@ def predict_stays(model: LosModel | Mapping[str, Any], state: UnitState,
 
 @dataclass(frozen=True, eq=False)
 class _StayTable:
-    """Whole stays as known at a cut-off: length so far, whether ended, and the days already
-    spent when the extract began (0 for stays admitted after it; left truncation)."""
+    """Whole stays as known at a cut-off: length so far and whether ended."""
 
     index: IntArray
     days: FloatArray
     ended: npt.NDArray[np.bool_]
-    entry: FloatArray
 
 
 def _stays_at(stays: pd.DataFrame, cutoff_ns: int) -> _StayTable:
@@ -861,11 +838,7 @@ def _stays_at(stays: pd.DataFrame, cutoff_ns: int) -> _StayTable:
     ended = stays["discharged_at"].notna().to_numpy() & (discharged <= cutoff_ns)
     end = np.where(ended, discharged, cutoff_ns)
     idx = np.flatnonzero(keep)
-    days = (end[idx] - admitted[idx]) / NS_PER_DAY
-    start_ns = extract_start_ns(stays, cutoff_ns)
-    entry = (np.zeros(idx.size) if start_ns is None
-             else np.clip((start_ns - admitted[idx]) / NS_PER_DAY, 0.0, days))
-    return _StayTable(idx.astype(np.int64), days, ended[idx], entry)
+    return _StayTable(idx.astype(np.int64), (end[idx] - admitted[idx]) / NS_PER_DAY, ended[idx])
 
 
 def _stay_hash_half(stay_ids: npt.ArrayLike) -> npt.NDArray[np.bool_]:
@@ -1036,9 +1009,7 @@ def _select_groups(design: Design, stays: pd.DataFrame, cutoff_ns: int
     v_ns = int(cutoff_ns - val_days * NS_PER_DAY)
     held = _stay_hash_half(stays["stay_id"].to_numpy())
     fit = _stays_at(stays, v_ns)
-    # Stays admitted before the extract began are left out of the tree, as in fitting it
-    # (``fit_stay_groups``: the log-rank tree has no delayed entry).
-    fit_keep = ~held[fit.index] & (fit.entry == 0)
+    fit_keep = ~held[fit.index]
     later = _stays_at(stays, cutoff_ns)
     val_keep = held[later.index] & (admitted[later.index] > v_ns)
     x_all = _admission_x(design, stays)
@@ -1083,7 +1054,7 @@ def _fit_groups(design: Design, stays: pd.DataFrame, cutoff_ns: int, params: Map
     return fit_stay_groups(x, table.days, table.ended, kinds, design.admission_features,
                            max_depth=int(params["max_depth"]),
                            min_samples_leaf=max(30, int(params["leaf_share"] * table.index.size)),
-                           rng=seed, entry=table.entry)
+                           rng=seed)
 
 
 # ---------------------------------------------------------------------------------------------
@@ -1233,9 +1204,7 @@ def _test_metrics(model: LosModel, train_lm: Landmarks, train_rows: IntervalRows
                             train_event, train_remaining)
     cutoff_ns = int(train_lm.end_ns.max())
     table = _stays_at(train_lm.stays, cutoff_ns)
-    shown = round_up_to_hours(table.days)
-    km = kaplan_meier(shown, table.ended,
-                      entry=np.minimum(np.floor(np.round(table.entry * 24, 6)) / 24, shown))
+    km = kaplan_meier(round_up_to_hours(table.days), table.ended)
     baseline = survival_metrics(event, remaining, *_km_summaries(km, test_lm.days_in),
                                 train_event, train_remaining)
     out["tree"], out["km"] = tree, baseline
