@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import sys
 from pathlib import Path
 
 import plotly
@@ -33,8 +34,19 @@ from app.web.templating import templates
 PLOTLY_JS = Path(plotly.__file__).resolve().parent / "package_data" / "plotly.min.js"
 
 
+# How long a thread may hold the interpreter lock before another waiting thread gets it
+# (Python's default is 5 ms). A request waits for the lock again after every database call;
+# while an import or a forecast computes in a worker thread, each of those waits took up to
+# the whole interval, so a page with a few dozen queries stalled for hundreds of
+# milliseconds. Measured with tests/benchmarks/test_bench_upload_stall.py on this project's
+# 2-core machine: /health and pages during a refused 50 MB upload, p95 506-654 ms with the
+# default, 28-32 ms with 0.5 ms.
+GIL_SWITCH_INTERVAL_S = 0.0005
+
+
 def create_app(database_url: str | None = None) -> FastAPI:
     """Build the app for one database; migrations are applied before it serves."""
+    sys.setswitchinterval(GIL_SWITCH_INTERVAL_S)
     url = database_url or get_settings().database_url
     db.upgrade(url)
     # FastAPI's /docs and /redoc pages load Swagger UI and ReDoc from a CDN and start them
