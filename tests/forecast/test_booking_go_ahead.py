@@ -3,14 +3,12 @@ bookings: recovered from simulated bookings whose true chance is known. Invented
 
 from __future__ import annotations
 
-from datetime import time
-from zoneinfo import ZoneInfo
-
 import numpy as np
 import pandas as pd
 
 from app.forecast.arrivals import MAX_LEAD, train_arrivals
-from app.state.frames import BOOKING_COLUMNS, OBSERVATION_COLUMNS, UnitState
+from app.state.frames import UnitState
+from tests.forecast.unit_state import unit_state
 
 START = pd.Timestamp("2026-01-05", tz="UTC")
 N_BOOKINGS = 1500
@@ -39,20 +37,8 @@ def _unit(seed: int = 4) -> UnitState:
                           "admission_type": "elective", "outcome": "home", "age": 50.0,
                           "sex": "m", "specialty": "ortho", "source": "theatre",
                           "booking_id": booking})
-    stay_frame = pd.DataFrame(stays)
-    booking_frame = pd.DataFrame(bookings, columns=list(BOOKING_COLUMNS))
-    for frame, columns in ((stay_frame, ("admitted_at", "discharged_at")),
-                           (booking_frame, ("booked_at", "cancelled_at"))):
-        for column in columns:
-            frame[column] = pd.to_datetime(frame[column], utc=True)
     as_of = START + pd.Timedelta(days=230, hours=8)
-    return UnitState(unit="KV-TEST", as_of=as_of, tz=ZoneInfo("UTC"), census_time=time(0, 0),
-                     bed_plan=((None, 30),), stays=stay_frame,
-                     observations=pd.DataFrame({c: pd.Series(dtype=object)
-                                                for c in OBSERVATION_COLUMNS}),
-                     bookings=booking_frame,
-                     snapshots=pd.DataFrame({"taken_at": pd.Series(dtype="datetime64[ns, UTC]"),
-                                             "occupancy": pd.Series(dtype=int)}))
+    return unit_state("KV-TEST", pd.DataFrame(stays), as_of, beds=30, bookings=bookings)
 
 
 def test_go_ahead_by_lead_recovers_the_simulated_chances() -> None:

@@ -5,8 +5,7 @@ numerical integration with scipy). Invented unit, simulated admissions."""
 
 from __future__ import annotations
 
-from datetime import date, time, timedelta
-from zoneinfo import ZoneInfo
+from datetime import timedelta
 
 import numpy as np
 import pandas as pd
@@ -14,7 +13,8 @@ import pytest
 from scipy import integrate, stats
 
 from app.forecast.arrivals import emergency_means, emergency_rate, train_arrivals
-from app.state.frames import BOOKING_COLUMNS, OBSERVATION_COLUMNS, UnitState
+from app.state.frames import UnitState
+from tests.forecast.unit_state import unit_state
 
 START = pd.Timestamp("2025-01-01", tz="UTC")
 
@@ -32,17 +32,7 @@ def _state(daily: np.ndarray, as_of: pd.Timestamp, seed: int) -> UnitState:
         "discharged_at": [d if d <= as_of else pd.NaT for d in discharged],
         "admission_type": "emergency", "outcome": None, "age": 60.0, "sex": "f",
         "specialty": "medicine", "source": "ed", "booking_id": None})
-    for column in ("admitted_at", "discharged_at"):
-        stays[column] = pd.to_datetime(stays[column], utc=True)
-    bookings = {c: pd.Series(dtype="datetime64[ns, UTC]" if c.endswith("_at") else object)
-                for c in BOOKING_COLUMNS}
-    return UnitState(unit="KV-TEST", as_of=as_of, tz=ZoneInfo("UTC"), census_time=time(0, 0),
-                     bed_plan=((None, 200),), stays=stays,
-                     observations=pd.DataFrame({c: pd.Series(dtype=object)
-                                                for c in OBSERVATION_COLUMNS}),
-                     bookings=pd.DataFrame(bookings),
-                     snapshots=pd.DataFrame({"taken_at": pd.Series(dtype="datetime64[ns, UTC]"),
-                                             "occupancy": pd.Series(dtype=int)}))
+    return unit_state("KV-TEST", stays, as_of, beds=200)
 
 
 def test_forecast_follows_a_change_of_level_after_training() -> None:

@@ -4,14 +4,14 @@ missing booking time) and count as "not yet booked" at every lead. Invented unit
 
 from __future__ import annotations
 
-from datetime import time, timedelta
-from zoneinfo import ZoneInfo
+from datetime import timedelta
 
 import numpy as np
 import pandas as pd
 
 from app.forecast.arrivals import MAX_LEAD, train_arrivals
-from app.state.frames import BOOKING_COLUMNS, OBSERVATION_COLUMNS, UnitState
+from app.state.frames import UnitState
+from tests.forecast.unit_state import unit_state
 
 START = pd.Timestamp("2026-01-05", tz="UTC")  # a Monday
 WEEKS = 20
@@ -38,21 +38,8 @@ def _unit(booked_share: float, seed: int = 3) -> UnitState:
                              "admission_type": "elective", "outcome": "home", "age": 60.0,
                              "sex": "f", "specialty": "ortho", "source": "theatre",
                              "booking_id": booking})
-    stays = pd.DataFrame(rows)
-    for column in ("admitted_at", "discharged_at"):
-        stays[column] = pd.to_datetime(stays[column], utc=True)
-    booking_frame = pd.DataFrame(bookings, columns=list(BOOKING_COLUMNS))
-    for column in BOOKING_COLUMNS:
-        if column.endswith("_at"):
-            booking_frame[column] = pd.to_datetime(booking_frame[column], utc=True)
     as_of = START + pd.Timedelta(days=7 * WEEKS, hours=8)
-    return UnitState(unit="KV-TEST", as_of=as_of, tz=ZoneInfo("UTC"), census_time=time(0, 0),
-                     bed_plan=((None, 10),), stays=stays,
-                     observations=pd.DataFrame({c: pd.Series(dtype=object)
-                                                for c in OBSERVATION_COLUMNS}),
-                     bookings=booking_frame,
-                     snapshots=pd.DataFrame({"taken_at": pd.Series(dtype="datetime64[ns, UTC]"),
-                                             "occupancy": pd.Series(dtype=int)}))
+    return unit_state("KV-TEST", pd.DataFrame(rows), as_of, beds=10, bookings=bookings)
 
 
 def _recount(state: UnitState, weekday: int, lead: int) -> float:

@@ -23,7 +23,7 @@ NOW = datetime(2026, 11, 2, 8, 0, tzinfo=UTC)  # a Monday morning
 WEEKS = 20
 
 
-def _csv(header: list[str], rows: list[list[object]]) -> bytes:
+def csv_bytes(header: list[str], rows: list[list[object]]) -> bytes:
     out = io.StringIO()
     writer = csv.writer(out, lineterminator="\n")
     writer.writerow(header)
@@ -31,7 +31,7 @@ def _csv(header: list[str], rows: list[list[object]]) -> bytes:
     return out.getvalue().encode("utf-8")
 
 
-def _stamp(moment: datetime) -> str:
+def stamp(moment: datetime) -> str:
     return moment.replace(tzinfo=None).isoformat(timespec="minutes")
 
 
@@ -57,26 +57,26 @@ def unit_files(seed: int = 13) -> dict[str, bytes]:
                 if kind == "elective":
                     booking = f"TB-B{number:04d}"
                     booked = admitted - timedelta(days=int(rng.integers(3, 30)))
-                    bookings.append([booking, UNIT, _stamp(booked), admitted.date().isoformat(),
+                    bookings.append([booking, UNIT, stamp(booked), admitted.date().isoformat(),
                                      int(rng.integers(30, 85)), "general-surgery", ""])
                 open_stay = discharged > NOW
-                stays.append([f"TB-S{number:04d}", UNIT, _stamp(admitted),
-                              "" if open_stay else _stamp(discharged), kind,
+                stays.append([f"TB-S{number:04d}", UNIT, stamp(admitted),
+                              "" if open_stay else stamp(discharged), kind,
                               "" if open_stay else "home", int(rng.integers(18, 95)),
                               "f" if rng.random() < 0.5 else "m", booking])
                 sofa = int(rng.integers(0, 12))
                 moment = admitted
                 while moment < min(discharged, NOW):
-                    scores.append([f"TB-S{number:04d}", _stamp(moment), "sofa", sofa])
+                    scores.append([f"TB-S{number:04d}", stamp(moment), "sofa", sofa])
                     sofa = int(np.clip(sofa + rng.integers(-2, 2), 0, 24))
                     moment += timedelta(days=1)
         day += 1
     return {
-        "units": _csv(["unit", "beds", "census_time"], [[UNIT, BEDS, "08:00"]]),
-        "stays": _csv(["stay_id", "unit", "admitted_at", "discharged_at", "admission_type",
+        "units": csv_bytes(["unit", "beds", "census_time"], [[UNIT, BEDS, "08:00"]]),
+        "stays": csv_bytes(["stay_id", "unit", "admitted_at", "discharged_at", "admission_type",
                        "outcome", "age", "sex", "booking_id"], stays),
-        "observations": _csv(["stay_id", "observed_at", "name", "value"], scores),
-        "bookings": _csv(["booking_id", "unit", "booked_at", "planned_date", "age",
+        "observations": csv_bytes(["stay_id", "observed_at", "name", "value"], scores),
+        "bookings": csv_bytes(["booking_id", "unit", "booked_at", "planned_date", "age",
                           "specialty", "procedure"], bookings),
     }
 

@@ -8,8 +8,6 @@ for much longer than the few seconds the shutdown may take.
 
 from __future__ import annotations
 
-import csv
-import io
 import os
 import signal
 import subprocess
@@ -97,18 +95,6 @@ def test_morrow_plan_past_its_limit_stops_with_a_plain_message(
 
 # -- SIGTERM while a long request runs ----------------------------------------------------------
 
-def _csv(header: list[str], rows: list[list[object]]) -> bytes:
-    out = io.StringIO()
-    writer = csv.writer(out, lineterminator="\n")
-    writer.writerow(header)
-    writer.writerows(rows)
-    return out.getvalue().encode("utf-8")
-
-
-def _stamp(moment: datetime) -> str:
-    return moment.replace(tzinfo=None).isoformat(timespec="minutes")
-
-
 def load_busy_unit(url: str, weeks: int = 8, seed: int = 29) -> None:
     """A busy invented unit: Poisson(26) emergency admissions a day, stays of about four
     days, a SOFA score at admission and each day after; trained at ``BUSY_NOW``."""
@@ -123,20 +109,20 @@ def load_busy_unit(url: str, weeks: int = 8, seed: int = 29) -> None:
             admitted = midnight + timedelta(minutes=int(rng.integers(0, 24 * 60)))
             discharged = admitted + timedelta(hours=float(rng.lognormal(np.log(80), 0.6)))
             still_in = discharged > BUSY_NOW
-            stays.append([f"BZ-S{number:05d}", BUSY_UNIT, _stamp(admitted),
-                          "" if still_in else _stamp(discharged), "emergency",
+            stays.append([f"BZ-S{number:05d}", BUSY_UNIT, small_unit.stamp(admitted),
+                          "" if still_in else small_unit.stamp(discharged), "emergency",
                           "" if still_in else "home", int(rng.integers(18, 95)),
                           "f" if rng.random() < 0.5 else "m"])
             moment, sofa = admitted, int(rng.integers(0, 12))
             while moment < min(discharged, BUSY_NOW):
-                scores.append([f"BZ-S{number:05d}", _stamp(moment), "sofa", sofa])
+                scores.append([f"BZ-S{number:05d}", small_unit.stamp(moment), "sofa", sofa])
                 sofa = int(np.clip(sofa + rng.integers(-2, 2), 0, 24))
                 moment += timedelta(days=1)
     files = {
-        "units": _csv(["unit", "beds", "census_time"], [[BUSY_UNIT, 90, "08:00"]]),
-        "stays": _csv(["stay_id", "unit", "admitted_at", "discharged_at", "admission_type",
+        "units": small_unit.csv_bytes(["unit", "beds", "census_time"], [[BUSY_UNIT, 90, "08:00"]]),
+        "stays": small_unit.csv_bytes(["stay_id", "unit", "admitted_at", "discharged_at", "admission_type",
                        "outcome", "age", "sex"], stays),
-        "observations": _csv(["stay_id", "observed_at", "name", "value"], scores),
+        "observations": small_unit.csv_bytes(["stay_id", "observed_at", "name", "value"], scores),
     }
     with db.session_scope(url) as session:
         for kind, data in files.items():
