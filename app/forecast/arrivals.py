@@ -304,8 +304,9 @@ def _demand_passed_today(state: UnitState, today: date, excess: int | None,
                          profile: np.ndarray) -> float:
     """Share of today's demand (by the clock profile) offered from midnight to ``as_of`` while
     the unit could admit: the admissions already seen are a thinned sample of that part."""
-    start = pd.Timestamp(localize(datetime.combine(today, time(0)), state.tz))
-    grid = pd.date_range(start, state.as_of, freq=f"{OPEN_GRID_MINUTES}min", inclusive="left")
+    start = pd.Timestamp(localize(datetime.combine(today, time(0)), state.tz)).tz_convert("UTC")
+    grid = pd.date_range(start, state.as_of.tz_convert("UTC"), freq=f"{OPEN_GRID_MINUTES}min",
+                         inclusive="left")
     if grid.empty:
         return 0.0
     hour = np.asarray(grid.tz_convert(state.tz).hour, dtype=np.int64)
