@@ -225,19 +225,7 @@ def cmd_restore(args: argparse.Namespace) -> int:
                 out.close()
         finally:
             live.close()
-    src = sqlite3.connect(f"file:{source}?mode=ro", uri=True)
-    try:
-        dst = sqlite3.connect(target, timeout=30)
-        try:
-            # The backup API writes the copy into the live file under SQLite's own locks,
-            # so a reader never sees half of it.
-            src.backup(dst)
-            dst.execute("PRAGMA journal_mode=WAL")
-            check = _integrity(dst)
-        finally:
-            dst.close()
-    finally:
-        src.close()
+    check = _copy_into(source, target)
     if check != "ok":
         return _error(f"the restored database fails its integrity check ({check})", EXIT_ERROR)
     try:
@@ -247,7 +235,7 @@ def cmd_restore(args: argparse.Namespace) -> int:
         if saved is None:
             return _error(f"{source} could not be brought up to this version's schema",
                           EXIT_ERROR)
-        _put_back(saved, target)
+        _copy_into(saved, target)  # the database the restore replaced, back in place
         return _error(f"{source} could not be brought up to this version's schema; the "
                       "database was put back as it was before the restore", EXIT_ERROR)
     with db.session_scope(args.db) as session:
@@ -262,18 +250,22 @@ def cmd_restore(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
-def _put_back(saved: Path, target: Path) -> None:
-    """Copy the database a failed restore replaced back into place."""
-    kept = sqlite3.connect(f"file:{saved}?mode=ro", uri=True)
+def _copy_into(source: Path, target: Path) -> str:
+    """Copy the SQLite database ``source`` into ``target``; the copy's integrity check.
+
+    The backup API writes the copy into the live file under SQLite's own locks, so a reader
+    never sees half of it."""
+    src = sqlite3.connect(f"file:{source}?mode=ro", uri=True)
     try:
-        live = sqlite3.connect(target, timeout=30)
+        dst = sqlite3.connect(target, timeout=30)
         try:
-            kept.backup(live)
-            live.execute("PRAGMA journal_mode=WAL")
+            src.backup(dst)
+            dst.execute("PRAGMA journal_mode=WAL")
+            return _integrity(dst)
         finally:
-            live.close()
+            dst.close()
     finally:
-        kept.close()
+        src.close()
 
 
 def _live_credentials(url: str) -> accounts.LiveCredentials:

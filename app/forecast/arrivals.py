@@ -24,6 +24,7 @@ not yet booked, all from what was known at the training cut-off.
 from __future__ import annotations
 
 from collections.abc import Mapping
+from dataclasses import replace
 from datetime import date, datetime, time, timedelta
 from typing import Any
 
@@ -174,10 +175,11 @@ def train_arrivals(state: UnitState) -> dict[str, Any]:
     # The held-out days are scored with the counts' own dispersion: scored as Poisson, an
     # overdispersed unit's busy days look like changes of level and pull a level in (on the
     # demo's critical-care backtest that cost 0.7% CRPS against scoring with the NB2).
-    dispersion = fit_daily_rate(days, counts, exposure=exposure, seasonal=False).alpha
-    choice = choose_demand_terms(days, counts, exposure=exposure, alpha=dispersion)
-    rate = fit_daily_rate(days, counts, exposure=exposure, seasonal=choice.seasonal,
-                          level_half_life=choice.level_half_life)
+    plain = fit_daily_rate(days, counts, exposure=exposure, seasonal=False)
+    choice = choose_demand_terms(days, counts, exposure=exposure, alpha=plain.alpha)
+    rate = (fit_daily_rate(days, counts, exposure=exposure, seasonal=True,
+                           level_half_life=choice.level_half_life) if choice.seasonal
+            else replace(plain, level_half_life=choice.level_half_life))
     elective = ~emergency
     return {
         "emergency": {

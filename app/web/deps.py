@@ -5,7 +5,8 @@ been sent, so a commit there could fail, or be lost with the process, after the 
 told "recorded". ``get_session`` therefore has scope "function": FastAPI ends it as soon as
 the route function returns, before the response goes out (fastapi/routing.py runs the
 function's exit stack, then awaits the response). A POST, PUT, PATCH or DELETE commits
-there, and a commit that fails becomes an error answer, never a success. A read (GET,
+there, and a commit that fails becomes an error answer, never a success (a busy database:
+the 503 of ``app.web.busy``). A read (GET,
 HEAD, OPTIONS) writes only bookkeeping (a session's last-seen time, the hourly stored
 forecast): it commits after the answer, as before, so a page never waits for another
 writer's lock just to note that someone looked.
@@ -16,16 +17,12 @@ from __future__ import annotations
 from collections.abc import Iterator
 from typing import Annotated
 
-from fastapi import Depends, HTTPException, Request
-from sqlalchemy.exc import OperationalError
+from fastapi import Depends, Request
 from sqlalchemy.orm import Session
 
 from app.store import db
-from app.store.retry import is_busy
 
 SAFE_METHODS = frozenset({"GET", "HEAD", "OPTIONS"})
-BUSY_ANSWER = ("The database was busy and nothing was saved. Please send it again in a "
-               "moment.")
 
 
 def _request_session(request: Request) -> Iterator[Session]:
@@ -37,14 +34,8 @@ def _request_session(request: Request) -> Iterator[Session]:
 def get_session(request: Request,
                 session: Annotated[Session, Depends(_request_session)]) -> Iterator[Session]:
     yield session
-    if request.method in SAFE_METHODS:
-        return
-    try:
+    if request.method not in SAFE_METHODS:
         session.commit()
-    except OperationalError as exc:
-        if not is_busy(exc):
-            raise
-        raise HTTPException(status_code=503, detail=BUSY_ANSWER) from None
 
 
 SessionDep = Annotated[Session, Depends(get_session, scope="function")]

@@ -5,9 +5,8 @@ from __future__ import annotations
 import csv
 import io
 import json
-import os
 from datetime import date, datetime, timedelta
-from typing import Annotated, Any, BinaryIO
+from typing import Annotated, Any
 
 from fastapi import APIRouter, File, Form, HTTPException, Query, Request, UploadFile
 from fastapi.responses import HTMLResponse, RedirectResponse, Response
@@ -269,13 +268,9 @@ def upload(request: Request, session: SessionDep, actor: DataActor,
     if kind not in KINDS:
         raise HTTPException(status_code=422, detail=f"kind must be one of {', '.join(KINDS)}")
     name = (file.filename or f"{kind}.csv")[:200]
-    limit = get_settings().max_upload_bytes
-    data = _read_within(file.file, limit)
-    if data is None:
-        why = (f"the file is larger than the upload limit of {limit / 1_000_000:.3g} MB "
-               "(setting MORROW_MAX_UPLOAD_BYTES); split it and upload the parts")
-        return _render_data(request, session, [Problem(name, None, None, None, why)], None,
-                            kind, status=413)
+    # The request guard (app/web/security.py) refused any body over the upload limit before
+    # the form was parsed; the parser spooled the file to disk, read here once.
+    data = file.file.read()
     try:
         # Within the request's own time limit, so the page answers before it is given up on.
         result = import_once(request.app.state.database_url, kind, data, name,
@@ -288,16 +283,3 @@ def upload(request: Request, session: SessionDep, actor: DataActor,
                             None, kind, status=503)
     return _render_data(request, session, None, result, kind)
 
-
-def _read_within(file: BinaryIO, limit: int) -> bytes | None:
-    """The uploaded file's bytes, or None when it is larger than ``limit``.
-
-    The form parser has already spooled the file to disk in chunks; its size is looked up
-    before reading, so a file over the limit is never read, and one within it is held in
-    memory once.
-    """
-    size = file.seek(0, os.SEEK_END)
-    if size > limit:
-        return None
-    file.seek(0)
-    return file.read()

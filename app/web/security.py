@@ -179,10 +179,12 @@ def _checked(request: Request, session: Session,
     session, that UPDATE took SQLite's write lock until the request ended, so every writer
     waited while a page computed its forecast (measured under 20 clients: 0.5 to 0.8 s a
     time). Committed on its own it holds the lock for milliseconds. Should the database stay
-    busy, the request's session looks it up instead and the note waits for the request's end.
+    busy, the request's session looks it up instead and the note waits for the request's end
+    (one attempt only: every request passes here, and each retry could wait a whole busy
+    timeout).
     """
     try:
-        return run_transaction(request.app.state.database_url, find)
+        return run_transaction(request.app.state.database_url, find, attempts=1)
     except OperationalError as exc:
         if not is_busy(exc):
             raise
