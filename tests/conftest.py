@@ -68,7 +68,7 @@ def db_url(database: str, request: pytest.FixtureRequest, tmp_path: Path) -> Ite
     shutil.copy(request.getfixturevalue("migrated_template"), path)
     url = f"sqlite:///{path}"
     yield url
-    db.get_engine(url).dispose()
+    db.release_engine(url)
 
 
 @pytest.fixture
@@ -80,7 +80,7 @@ def empty_db_url(database: str, request: pytest.FixtureRequest, tmp_path: Path) 
         return
     url = f"sqlite:///{tmp_path / 'empty.db'}"
     yield url
-    db.get_engine(url).dispose()
+    db.release_engine(url)
 
 
 @pytest.fixture(scope="session")

@@ -68,7 +68,7 @@ class PostgresDatabases:
         return name
 
     def drop(self, name: str) -> None:
-        db.get_engine(self.url(name)).dispose()
+        db.release_engine(self.url(name))
         with self.admin.connect() as conn:
             # FORCE ends connections a test left open (PostgreSQL 13 and later).
             conn.exec_driver_sql(f'DROP DATABASE IF EXISTS "{name}" WITH (FORCE)')
@@ -78,7 +78,7 @@ class PostgresDatabases:
         name = self.create()
         url = self.url(name)
         db.upgrade(url)
-        db.get_engine(url).dispose()  # a template must have no open connections
+        db.release_engine(url)  # a template must have no open connections
         self.template = name
         return name
 

@@ -295,7 +295,7 @@ def _prepare_workers(url: str) -> None:
     os.environ["MORROW_DATABASE_URL"] = url
     get_settings.cache_clear()
     load_csrf_key(url)
-    db.get_engine(url).dispose()
+    db.release_engine(url)
 
 
 def build_parser() -> argparse.ArgumentParser:

@@ -210,7 +210,7 @@ def cmd_restore(args: argparse.Namespace) -> int:
         return _error(f"{source} cannot be restored: {'; '.join(problems)}. Nothing was "
                       "changed")
     honoured = _live_credentials(args.db)
-    db.get_engine(args.db).dispose()  # this process's connections must not hold the file
+    db.release_engine(args.db)  # this process's connections must not hold the file
     saved = None
     if target.exists():
         stamp = datetime.now(UTC).strftime("%Y%m%dT%H%M%SZ")
@@ -231,7 +231,7 @@ def cmd_restore(args: argparse.Namespace) -> int:
     try:
         db.upgrade(args.db)  # a backup from an older version is brought up to this one
     except Exception:  # Alembic and the drivers raise several kinds; none leaves it usable
-        db.get_engine(args.db).dispose()
+        db.release_engine(args.db)
         if saved is None:
             return _error(f"{source} could not be brought up to this version's schema",
                           EXIT_ERROR)

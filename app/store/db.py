@@ -7,9 +7,10 @@ statement only one of them understands belongs in a branch on ``dialect.name``.
 
 from __future__ import annotations
 
+import threading
+from collections import OrderedDict
 from collections.abc import Iterator
 from contextlib import contextmanager
-from functools import lru_cache
 from typing import Any
 
 from sqlalchemy import Engine, create_engine, event
@@ -30,9 +31,15 @@ def _sqlite_pragmas(dbapi_connection: Any, _record: Any) -> None:
     cursor.close()
 
 
-@lru_cache(maxsize=16)
-def get_engine(url: str) -> Engine:
-    """One engine per database URL for the life of the process."""
+# Engines are kept per database URL (a server uses one; tests and restores use several). The
+# oldest is disposed when more than this many are open, so no pool is dropped with its
+# connections still open.
+MAX_ENGINES = 16
+_engines: OrderedDict[str, tuple[Engine, sessionmaker[Session]]] = OrderedDict()
+_engines_lock = threading.Lock()
+
+
+def _create_engine(url: str) -> Engine:
     if url.startswith("sqlite"):
         engine = create_engine(url, connect_args={"timeout": BUSY_TIMEOUT_MS / 1000})
         event.listen(engine, "connect", _sqlite_pragmas)
@@ -44,15 +51,47 @@ def get_engine(url: str) -> Engine:
     return create_engine(parsed, pool_pre_ping=True)
 
 
-@lru_cache(maxsize=16)
-def _session_factory(url: str) -> sessionmaker[Session]:
-    return sessionmaker(get_engine(url), expire_on_commit=False)
+def _entry(url: str) -> tuple[Engine, sessionmaker[Session]]:
+    with _engines_lock:
+        entry = _engines.get(url)
+        if entry is not None:
+            _engines.move_to_end(url)
+            return entry
+        engine = _create_engine(url)
+        entry = (engine, sessionmaker(engine, expire_on_commit=False))
+        _engines[url] = entry
+        while len(_engines) > MAX_ENGINES:
+            _, (oldest, _) = _engines.popitem(last=False)
+            oldest.dispose()
+        return entry
+
+
+def get_engine(url: str) -> Engine:
+    """One engine per database URL, kept until released (or until it is the oldest of many)."""
+    return _entry(url)[0]
+
+
+def release_engine(url: str) -> None:
+    """Close this process's idle connections to ``url`` and forget its engine.
+
+    The next use makes a new engine (taking the current settings, such as the busy timeout).
+    Connections still checked out finish their work and are closed when returned.
+    """
+    with _engines_lock:
+        entry = _engines.pop(url, None)
+    if entry is not None:
+        entry[0].dispose()
+
+
+def release_all_engines() -> None:
+    for url in list(_engines):
+        release_engine(url)
 
 
 @contextmanager
 def session_scope(url: str) -> Iterator[Session]:
     """The one place that commits: on success; rolls back on any error."""
-    session = _session_factory(url)()
+    session = _entry(url)[1]()
     try:
         yield session
         session.commit()

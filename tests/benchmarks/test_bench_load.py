@@ -109,7 +109,7 @@ def load_server(db_url: str, tmp_path: Path, clients: int, workers: int = 1,
         train_model(session, UNIT, until, UTC_ZONE)
     for c in range(clients):
         make_user(db_url, f"load.nurse{c:02d}", role, PASSWORD)
-    db.get_engine(db_url).dispose()
+    db.release_engine(db_url)
     log = tmp_path / "server.err"
     with serve(db_url, workers, log, start_timeout_s=180) as running:
         if workers > 1:

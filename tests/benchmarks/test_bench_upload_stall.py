@@ -39,7 +39,7 @@ def test_health_and_pages_while_a_big_upload_and_a_held_lock(tmp_path: Path) -> 
     db.upgrade(url)
     seed_unit(url)
     make_user(url, "manager", "bed_manager", PASSWORD)
-    db.get_engine(url).dispose()
+    db.release_engine(url)
     served = start(url)
     answers: dict[str, int] = {}
     times: dict[str, list[float]] = {p: [] for p in PATHS}

@@ -35,7 +35,7 @@ def test_backup_and_restore_point_to_postgresql_tools(
         assert main(["--db", url, "restore", str(tmp_path / "b.db")]) == 2
         assert "pg_restore --clean --if-exists" in capsys.readouterr().err
         assert not (tmp_path / "b.db").exists()
-        db.get_engine(url).dispose()
+        db.release_engine(url)
 
 
 def test_serve_refuses_no_workers(db_url: str, capsys: pytest.CaptureFixture[str]) -> None:
@@ -68,7 +68,7 @@ def test_pg_dump_and_pg_restore_round_trip(postgres_databases: PostgresDatabases
         with db.session_scope(url) as session:
             import_file(session, "units", b"unit,beds\nU-NEW,2\n", "units-2.csv", tz=UTC_ZONE)
         assert counts(url) != saved
-        db.get_engine(url).dispose()  # as with the server stopped
+        db.release_engine(url)  # as with the server stopped
         subprocess.run(["pg_restore", "--clean", "--if-exists", f"--dbname={libpq_url(url)}",
                         str(dump)], check=True, capture_output=True)
         assert counts(url) == saved
@@ -78,4 +78,4 @@ def test_pg_dump_and_pg_restore_round_trip(postgres_databases: PostgresDatabases
             import_file(session, "units", b"unit,beds\nU-AFTER,3\n", "units-3.csv", tz=UTC_ZONE)
         with db.get_engine(url).connect() as conn:
             assert conn.execute(text("SELECT count(*) FROM unit")).scalar() == saved[0] + 1
-        db.get_engine(url).dispose()
+        db.release_engine(url)

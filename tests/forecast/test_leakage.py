@@ -63,7 +63,7 @@ def test_forecast_from_everything_equals_forecast_from_what_was_known(
             train_model(session, UNIT, as_of, UTC_ZONE)
         with db.session_scope(url) as session:
             results.append(forecast(session, UNIT, as_of, UTC_ZONE, days=7, paths=2000, seed=5))
-        db.get_engine(url).dispose()
+        db.release_engine(url)
     everything, known = results
     assert _strings(everything) == _strings(known)
     a, b = np.array(_numbers(everything)), np.array(_numbers(known))

@@ -67,4 +67,4 @@ def test_train_unit_stores_a_model_found_for_later_instants(demo_db: str,
     assert found is not None and found[0] == model_id and found[1] == until
     model = LosModel.from_payload(found[2])
     assert model.census_time.hour == 0 and model.hazard.tree.leaves.size >= 2
-    db.get_engine(url).dispose()
+    db.release_engine(url)

@@ -62,7 +62,7 @@ def seed(url: str, writers: int = 1) -> None:
     for username, role in ACCOUNTS.values():
         for w in range(writers):
             make_user(url, account(username, w), role, PASSWORD)
-    db.get_engine(url).dispose()
+    db.release_engine(url)
 
 
 def account(username: str, writer: int) -> str:

@@ -50,11 +50,10 @@ def counts(db_url: str) -> tuple[int, int]:
 def client(db_url: str, monkeypatch: pytest.MonkeyPatch) -> Iterator[TestClient]:
     monkeypatch.setattr(db, "BUSY_TIMEOUT_MS", BUSY_TIMEOUT_MS)
     seed(db_url)
-    db.get_engine.cache_clear()  # the next engine takes the short timeout
+    db.release_engine(db_url)  # the next engine takes the short timeout
     with signed_in_client(create_app(db_url), "crash.manager", PASSWORD) as signed:
         yield signed
-    db.get_engine(db_url).dispose()
-    db.get_engine.cache_clear()
+    db.release_engine(db_url)
 
 
 def writes(client: TestClient, token: str, k: int) -> dict[str, tuple[str, dict[str, object]]]:

@@ -70,7 +70,7 @@ def test_kill_nine_at_random_moments_loses_no_confirmed_write(db_url: str,
     finally:
         stop.set()
         server.stop()
-    db.get_engine(db_url).dispose()
+    db.release_engine(db_url)
 
     print(f"\n{KILLS} kills ({kinds_of_kill}); restarts took {min(starts):.1f}-"
           f"{max(starts):.1f} s; confirmed: {len(record.scores)} scores, "
@@ -83,4 +83,4 @@ def test_kill_nine_at_random_moments_loses_no_confirmed_write(db_url: str,
     integrity, how = integrity_problems(db_url)
     print(f"integrity: {how}: {integrity or 'ok'}")
     assert not integrity, integrity
-    db.get_engine(db_url).dispose()
+    db.release_engine(db_url)

@@ -82,7 +82,7 @@ def child_db(migrated_template: Path, tmp_path: Path) -> str:
     shutil.copy(migrated_template, path)
     url = f"sqlite:///{path}"
     load_unit(url)
-    db.get_engine(url).dispose()
+    db.release_engine(url)
     return url
 
 

@@ -101,13 +101,13 @@ def test_restore_brings_an_older_complete_backup_up_to_date(
         tmp_path: Path, capsys: pytest.CaptureFixture[str], db_url: str) -> None:
     older = tmp_path / "older.db"
     db.upgrade(f"sqlite:///{older}", "0005")  # a complete backup made by an older version
-    db.get_engine(f"sqlite:///{older}").dispose()
+    db.release_engine(f"sqlite:///{older}")
     assert main(["--db", db_url, "restore", str(older)]) == 0
     assert db.current_revision(db_url) == db.head_revision()
     # A backup that lacks a table of its own (older) revision is refused like the others.
     broken = tmp_path / "older-broken.db"
     db.upgrade(f"sqlite:///{broken}", "0005")
-    db.get_engine(f"sqlite:///{broken}").dispose()
+    db.release_engine(f"sqlite:///{broken}")
     with sqlite3.connect(broken) as conn:
         conn.execute("DROP TABLE training_run")
     conn.close()

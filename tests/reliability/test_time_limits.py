@@ -129,7 +129,7 @@ def load_busy_unit(url: str, weeks: int = 8, seed: int = 29) -> None:
             import_file(session, kind, data, f"{kind}.csv", tz=UTC_ZONE, actor="test-fixture")
     with db.session_scope(url) as session:
         train_model(session, BUSY_UNIT, BUSY_NOW, UTC_ZONE)
-    db.get_engine(url).dispose()
+    db.release_engine(url)
 
 
 def cpu_seconds(pid: int) -> float:

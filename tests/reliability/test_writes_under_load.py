@@ -91,7 +91,7 @@ def test_eight_clients_no_500_no_stall_each_write_once(db_url: str, tmp_path: Pa
     finally:
         stop.set()
         server.stop()
-    db.get_engine(db_url).dispose()
+    db.release_engine(db_url)
 
     print(f"\n{len(threads)} clients, {wall:.1f} s: {len(record.scores)} scores, "
           f"{len(record.bookings)} bookings, {len(record.uploads)} files confirmed; "
@@ -103,4 +103,4 @@ def test_eight_clients_no_500_no_stall_each_write_once(db_url: str, tmp_path: Pa
     assert not problems, problems[:10]
     integrity, _ = integrity_problems(db_url)
     assert not integrity, integrity
-    db.get_engine(db_url).dispose()
+    db.release_engine(db_url)

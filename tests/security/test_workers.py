@@ -208,7 +208,7 @@ def test_scenario_through_four_server_workers_on_postgresql(
             make_user(url, f"nurse{w}", "nurse_in_charge", PASSWORD)
         for i in range(IMPORTERS):
             make_user(url, f"manager{i}", "bed_manager", PASSWORD)
-        db.get_engine(url).dispose()
+        db.release_engine(url)
         with serve(url, WORKERS, tmp_path / "server.err") as server:
             workers = worker_pids(server.process.pid)
             assert len(workers) == WORKERS, workers
@@ -225,7 +225,7 @@ def test_scenario_through_four_server_workers_on_postgresql(
             assert busy >= 2
             assert "Traceback" not in server.log.read_text(errors="replace")
         check_stored_once(url)
-        db.get_engine(url).dispose()
+        db.release_engine(url)
 
 
 def run_scenario(base: str) -> list[str]:

@@ -108,7 +108,7 @@ def make_db(template: Path, folder: Path, name: str, files: dict[str, bytes]) ->
 def state_frames(url: str, at: datetime) -> dict[str, pd.DataFrame]:
     with db.session_scope(url) as session:
         state = load_state(session, "U-T", at, UTC_ZONE)
-    db.get_engine(url).dispose()
+    db.release_engine(url)
     return {"stays": state.stays, "observations": state.observations,
             "bookings": state.bookings, "snapshots": state.snapshots,
             "current": state.current_stays(), "open_bookings": state.open_bookings(),

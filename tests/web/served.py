@@ -46,7 +46,7 @@ def trained_copy(demo_db: str, folder: Path, units: tuple[str, ...]) -> str:
     for username, role in (("manager", "bed_manager"), ("scheduler", "scheduler"),
                            ("nurse", "nurse_in_charge"), ("viewer", "viewer")):
         make_user(url, username, role, PASSWORD)
-    db.get_engine(url).dispose()
+    db.release_engine(url)
     return url
 
 

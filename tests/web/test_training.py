@@ -206,4 +206,4 @@ def test_the_page_starts_a_real_training_process_and_shows_it(
     assert "Chosen by replaying the last 13 weeks" in shown
     done_page = TestClient(app).get("/units/KV-CRIT/training", follow_redirects=False)
     assert done_page.status_code == 303  # signed out: sent to sign in, nothing shown
-    db.get_engine(url).dispose()
+    db.release_engine(url)
