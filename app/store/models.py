@@ -19,6 +19,7 @@ from sqlalchemy import (
     TypeDecorator,
     UniqueConstraint,
 )
+from sqlalchemy import false as sa_false
 from sqlalchemy.orm import DeclarativeBase, Mapped, mapped_column
 
 
@@ -82,6 +83,9 @@ class Unit(Base):
     code: Mapped[str] = mapped_column(String(64), primary_key=True)
     census_time: Mapped[str] = mapped_column(String(5), default="00:00")
     created_at: Mapped[datetime] = mapped_column(default=utcnow)
+    # The chance over staffed beds shown as a warning / an alarm; None: the site's defaults.
+    warning_level: Mapped[float | None] = mapped_column(Float)
+    alarm_level: Mapped[float | None] = mapped_column(Float)
 
 
 class UnitBeds(Base):
@@ -116,6 +120,10 @@ class Stay(Base):
     specialty: Mapped[str | None] = mapped_column(String(100))
     source: Mapped[str | None] = mapped_column(String(100))
     booking_id: Mapped[str | None] = mapped_column(String(64))
+    # Pseudonymous person id (never a hospital number) and the units it came from / went to.
+    patient: Mapped[str | None] = mapped_column(String(64), index=True)
+    from_unit: Mapped[str | None] = mapped_column(String(64))
+    to_unit: Mapped[str | None] = mapped_column(String(64))
     batch_id: Mapped[int | None] = mapped_column(ForeignKey("import_batch.id"))
 
 
@@ -170,6 +178,8 @@ class Observation(Base):
     value: Mapped[float] = mapped_column(Float)
     recorded_at: Mapped[datetime]
     revision: Mapped[int] = mapped_column(Integer, default=0, server_default="0")
+    # True on an entry that withdraws the value (kept for the record) instead of giving one.
+    withdrawn: Mapped[bool] = mapped_column(default=False, server_default=sa_false())
     batch_id: Mapped[int | None] = mapped_column(ForeignKey("import_batch.id"))
 
 
