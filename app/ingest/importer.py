@@ -93,6 +93,7 @@ def _columns(kind: str, tz: ZoneInfo) -> list[Column]:
             Column("outcome", False, p.one_of(*OUTCOMES)),
             *covariates,
             Column("booking_id", False, p.identifier),
+            *_transfer_columns(),
         ]
     if kind == "census":
         return [
@@ -124,6 +125,13 @@ def _columns(kind: str, tz: ZoneInfo) -> list[Column]:
             Column("cancelled_at", False, ts),
         ]
     raise ValueError(f"kind must be one of {', '.join(KINDS)}; got {kind!r}")
+
+
+def _transfer_columns() -> list[Column]:
+    # A to_unit may name a destination outside the hospital's units, so neither it nor
+    # from_unit has to be a unit of units.csv; both follow the unit code syntax.
+    return [Column("patient", False, p.identifier), Column("from_unit", False, p.unit_code),
+            Column("to_unit", False, p.unit_code)]
 
 
 def _score_name(value: str) -> str:
@@ -338,7 +346,10 @@ def _units_apply(session: Session, plan: tuple[Rows, dict[str, str]], batch_id: 
 # stays ----------------------------------------------------------------------------------------
 
 STAY_FIELDS = ("unit", "admitted_at", "discharged_at", "admission_type", "outcome", "age", "sex",
-               "specialty", "source", "booking_id")
+               "specialty", "source", "booking_id", "patient", "from_unit", "to_unit")
+# Optional columns added after the first files were written: a file without the column says
+# nothing about them, so a stored value stays (a blank cell in a file that has it clears it).
+LATER_STAY_FIELDS = ("patient", "from_unit", "to_unit")
 
 
 def _stored_by_key(session: Session, column: Any, keys: list[str]) -> dict[str, Any]:
@@ -351,7 +362,10 @@ def _stored_by_key(session: Session, column: Any, keys: list[str]) -> dict[str, 
     return found
 
 
-def _stays_check(session: Session, sheet: Sheet) -> tuple[Rows, dict[str, Stay]]:
+StaysPlan = tuple[Rows, dict[str, Stay], tuple[str, ...]]
+
+
+def _stays_check(session: Session, sheet: Sheet) -> StaysPlan:
     _known_units(session, sheet)
     stored = _stored_by_key(session, Stay.stay_id, [r["stay_id"] for _, r in sheet.rows])
     for line, row in sheet.rows:
@@ -359,16 +373,19 @@ def _stays_check(session: Session, sheet: Sheet) -> tuple[Rows, dict[str, Stay]]
         if old is not None and old.unit != row["unit"]:
             sheet.problem(line, "unit", row["unit"],
                           f"this stay_id is stored for unit {old.unit}: a stay is in one unit")
-    return sheet.rows, stored
+    absent = tuple(f for f in LATER_STAY_FIELDS if f not in sheet.present)
+    return sheet.rows, stored, absent
 
 
-def _stays_apply(session: Session, plan: tuple[Rows, dict[str, Stay]], batch_id: int, actor: str,
+def _stays_apply(session: Session, plan: StaysPlan, batch_id: int, actor: str,
                  result: ImportResult) -> None:
-    rows, stored = plan
+    rows, stored, absent = plan
     new_rows, audits = [], []
     for _, row in rows:
         incoming = {f: row[f] for f in STAY_FIELDS}
         old = stored.get(row["stay_id"])
+        if old is not None:
+            incoming.update({f: getattr(old, f) for f in absent})
         if old is None:
             source = "stays" if incoming["discharged_at"] is not None else None
             new_rows.append({"stay_id": row["stay_id"], **incoming, "discharge_source": source,

@@ -74,6 +74,8 @@ class Sheet:
     rows: list[tuple[int, dict[str, Any]]] = field(default_factory=list)
     problems: list[Problem] = field(default_factory=list)
     warnings: list[str] = field(default_factory=list)
+    # The known columns the file's header has (an optional column may be absent altogether).
+    present: set[str] = field(default_factory=set)
 
     def problem(self, line: int | None, column: str | None, value: Any, why: str) -> None:
         shown = None if value is None else str(value)
@@ -299,6 +301,7 @@ def read_sheet(data: bytes, filename: str, columns: list[Column]) -> Sheet:
     if sheet.problems:
         return sheet
     index = {name: i for i, name in enumerate(header) if name in known}
+    sheet.present = set(index)
     by_name = {c.name: c for c in columns}
     try:
         for line, record in records:

@@ -104,6 +104,37 @@ def test_stay_update_is_audited_with_before_and_after(unit_db: str) -> None:
         assert event.batch_id == result.batch_id and event.actor == "tester"
 
 
+TRANSFER_HEADER = STAY_HEADER + ",patient,from_unit,to_unit"
+
+
+def test_transfer_columns_are_stored_and_an_older_file_keeps_them(unit_db: str) -> None:
+    # DATA_CONTRACT stays.csv: patient, from_unit and to_unit are optional; files without
+    # them stay valid and mean "not known", so re-importing such a file keeps what is stored.
+    moved = csv_bytes(
+        TRANSFER_HEADER,
+        "S-1,U-TEST,2026-03-01T10:00,2026-03-04T14:30,emergency,ward,67,f,cardiology,"
+        "emergency-dept,P-77,,KV-WARD-9",
+        "S-2,U-TEST,2026-03-02T15:00,,elective,,54,m,cardiac-surgery,theatre,P-78,U-TEST,")
+    assert run(unit_db, "stays", moved).inserted == 2
+    again = run(unit_db, "stays", GOOD_STAYS)  # the older layout, without the three columns
+    assert (again.updated, again.unchanged) == (0, 2)
+    with db.session_scope(unit_db) as session:
+        s1, s2 = session.get(Stay, "S-1"), session.get(Stay, "S-2")
+        assert (s1.patient, s1.from_unit, s1.to_unit) == ("P-77", None, "KV-WARD-9")
+        assert (s2.patient, s2.from_unit, s2.to_unit) == ("P-78", "U-TEST", None)
+    cleared = csv_bytes(
+        TRANSFER_HEADER,
+        "S-1,U-TEST,2026-03-01T10:00,2026-03-04T14:30,emergency,ward,67,f,cardiology,"
+        "emergency-dept,P-77,,")
+    assert run(unit_db, "stays", cleared).updated == 1  # a blank cell in the column clears it
+    with db.session_scope(unit_db) as session:
+        assert session.get(Stay, "S-1").to_unit is None
+    problems = refused(unit_db, "stays", csv_bytes(
+        TRANSFER_HEADER,
+        "S-3,U-TEST,2026-03-02T15:00,,elective,,54,m,x,theatre,P-79,bad unit,"))
+    assert [(q.line, q.column) for q in problems] == [(2, "from_unit")]
+
+
 def _only(problems: list, column: str):
     matching = [p for p in problems if p.column == column]
     assert matching, f"no problem names column {column!r}: {problems}"
