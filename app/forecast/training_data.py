@@ -15,7 +15,7 @@ import numpy as np
 import numpy.typing as npt
 
 # A score must be known at a morning landmark for this many stays: the hazard tree's leaves
-# hold at least ten stays (``los._min_stays``), so a split on a score seen for fewer stays
+# hold at least ten stays (``los.selection._min_stays``), so a split on a score seen for fewer stays
 # cannot be made, and its columns would only be missing values to the model.
 MIN_SCORE_STAYS = 10
 # Fewer ended stays leave the admission groups' trees nothing to split (they need two stays

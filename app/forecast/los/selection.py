@@ -1,0 +1,271 @@
+"""Choosing tree sizes on a later period for a held-out half of the stays."""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass
+from datetime import time
+from typing import Any
+from zoneinfo import ZoneInfo
+
+import numpy as np
+import numpy.typing as npt
+import pandas as pd
+
+from app.forecast.los.constants import (
+    DEPTH_GRID,
+    GROUP_DEPTH_GRID,
+    MAX_VALIDATION_ROWS,
+    MIN_ROWS_LEAF,
+    MIN_STAYS_SHARE_GRID,
+    NS_PER_DAY,
+    FloatArray,
+    IntArray,
+)
+from app.forecast.los.design import Design, _row_matrix, make_design
+from app.forecast.los.rows import IntervalRows, Landmarks, _ns, _rows_weekday, interval_rows
+from app.forecast.training_data import (
+    KnownColumnsOnly,
+)
+from app.stats.stay_groups import StayGroups, fit_stay_groups, round_up_to_hours
+from app.stats.survival_tree import (
+    HazardTreeModel,
+    PiecewiseHazardTree,
+    piecewise_log_likelihood,
+)
+
+
+@dataclass(frozen=True, eq=False)
+class _StayTable:
+    """Whole stays as known at a cut-off: length so far and whether ended."""
+
+    index: IntArray
+    days: FloatArray
+    ended: npt.NDArray[np.bool_]
+
+
+def _stays_at(stays: pd.DataFrame, cutoff_ns: int) -> _StayTable:
+    admitted = _ns(stays["admitted_at"])
+    discharged = _ns(stays["discharged_at"])
+    keep = admitted <= cutoff_ns
+    ended = stays["discharged_at"].notna().to_numpy() & (discharged <= cutoff_ns)
+    end = np.where(ended, discharged, cutoff_ns)
+    idx = np.flatnonzero(keep)
+    return _StayTable(idx.astype(np.int64), (end[idx] - admitted[idx]) / NS_PER_DAY, ended[idx])
+
+
+def _stay_hash_half(stay_ids: npt.ArrayLike) -> npt.NDArray[np.bool_]:
+    """A fixed half of the stays, by a hash of the stay id (the same on every run)."""
+    hashed = pd.util.hash_pandas_object(pd.Series(np.asarray(stay_ids, dtype=object)),
+                                        index=False).to_numpy()
+    return (hashed % np.uint64(2)) == 1
+
+
+def _sample_landmarks(landmarks: Landmarks, limit: int, rng: np.random.Generator) -> Landmarks:
+    if landmarks.size <= limit:
+        return landmarks
+    keep = np.zeros(landmarks.size, dtype=bool)
+    keep[rng.choice(landmarks.size, size=limit, replace=False)] = True
+    return landmarks.subset(keep)
+
+
+def _fit_hazard(design: Design, landmarks: Landmarks, rows: IntervalRows, *, depth: int,
+                min_stays: int, x: npt.NDArray[np.float32] | None = None) -> HazardTreeModel:
+    x = _row_matrix(design, landmarks, rows) if x is None else x
+    tree = PiecewiseHazardTree(max_depth=depth, min_samples_leaf=MIN_ROWS_LEAF,
+                               min_stays_leaf=min_stays)
+    tree.fit(x, rows.event, rows.start, rows.stop, rows.days_in, features=design.features,
+             groups=landmarks.stay_index[rows.landmark], sample_weight=rows.weight)
+    return tree.model_
+
+
+@dataclass(frozen=True, eq=False)
+class _Split:
+    """Fit and validation rows, split by stay and by time."""
+
+    fit_lm: Landmarks
+    fit_rows: IntervalRows
+    val_lm: Landmarks
+    val_rows: IntervalRows
+    design: Design
+    x_fit: npt.NDArray[np.float32]
+    x_val: npt.NDArray[np.float32]
+
+
+def _validation_split(landmarks: Landmarks, cutoff_ns: int, census_time: time, tz: ZoneInfo,
+                      names: Sequence[str], rng: np.random.Generator) -> _Split:
+    """Fit on what was known at V (three tenths of the way back from the cut-off, at most 180
+    days) for one half of the stays (by stay-id hash); validate on the other half's landmarks
+    after V, with outcomes known at the cut-off. Split by stay and by time, never by row."""
+    first = int(landmarks.at_ns.min())
+    span = (cutoff_ns - first) / NS_PER_DAY
+    val_days = min(180.0, 0.3 * span)
+    v_ns = int(cutoff_ns - val_days * NS_PER_DAY)
+    held = _stay_hash_half(landmarks.stays["stay_id"].to_numpy())[landmarks.stay_index]
+    fit_lm = landmarks.subset(~held).censored_at(v_ns)
+    val_lm = landmarks.subset(held & (landmarks.at_ns >= v_ns))
+    val_lm = _sample_landmarks(val_lm, MAX_VALIDATION_ROWS // 4, rng)
+    fit_rows = interval_rows(fit_lm, census_time, tz, rng=rng, max_rows=MAX_VALIDATION_ROWS)
+    val_rows = interval_rows(val_lm, census_time, tz)
+    design = make_design(fit_lm, fit_rows, names)
+    return _Split(fit_lm, fit_rows, val_lm, val_rows, design,
+                  _row_matrix(design, fit_lm, fit_rows), _row_matrix(design, val_lm, val_rows))
+
+
+def _n_stays(landmarks: Landmarks, rows: IntervalRows) -> int:
+    return int(np.unique(landmarks.stay_index[rows.landmark]).size)
+
+
+DEFAULT_SIZES = {"max_depth": 3, "min_stays_share": 0.04}
+
+
+def _can_validate(split: _Split) -> bool:
+    return bool(split.fit_rows.event.any() and split.val_rows.event.size >= 50
+                and _n_stays(split.fit_lm, split.fit_rows) >= 50)
+
+
+def _select_hazard(split: _Split) -> tuple[dict[str, Any], list[dict[str, Any]]]:
+    """Tree depth and the fewest stays per leaf (as a share of the stays) by validation
+    log-likelihood; the smallest tree within 0.0005 nats per row of the best is kept. With too
+    little history to validate, fixed sizes (depth 3, 4 % of the stays; common practice, no
+    source) and no validation model."""
+    if not _can_validate(split):
+        return {**DEFAULT_SIZES, "validation_model": None}, []
+    n_stays = _n_stays(split.fit_lm, split.fit_rows)
+    results: list[dict[str, Any]] = []
+    models: list[HazardTreeModel] = []
+    for depth in DEPTH_GRID:
+        for share in MIN_STAYS_SHARE_GRID:
+            model = _fit_hazard(split.design, split.fit_lm, split.fit_rows, depth=depth,
+                                min_stays=max(10, int(share * n_stays)), x=split.x_fit)
+            rows = split.val_rows
+            score = piecewise_log_likelihood(model, split.x_val, rows.event, rows.start,
+                                             rows.stop, rows.days_in, rows.weight)
+            results.append({"max_depth": depth, "min_stays_share": share,
+                            "leaves": int(model.tree.leaves.size), "val_loglik": score})
+            models.append(model)
+    best = max(r["val_loglik"] for r in results)
+    chosen = min(range(len(results)), key=lambda i: (
+        results[i]["val_loglik"] < best - 5e-4, results[i]["leaves"],
+        -results[i]["val_loglik"]))
+    return {"max_depth": int(results[chosen]["max_depth"]),
+            "min_stays_share": float(results[chosen]["min_stays_share"]),
+            "validation_model": models[chosen]}, results
+
+
+def _ensemble_x(x: npt.NDArray[np.float32], weekday: FloatArray) -> npt.NDArray[np.float32]:
+    return np.column_stack([x, weekday.astype(np.float32)])
+
+
+def _boosted(max_iter: int) -> Any:
+    from sklearn.ensemble import HistGradientBoostingRegressor
+
+    return KnownColumnsOnly(HistGradientBoostingRegressor(
+        loss="poisson", learning_rate=0.1, max_iter=max_iter, max_leaf_nodes=15,
+        min_samples_leaf=200, l2_regularization=1.0, early_stopping=False, random_state=0))
+
+
+def _one_thread() -> Any:
+    """OpenMP limited to one thread around the ensemble: on a shared two-core machine its
+    threads otherwise wait on each other (measured: 1.4 s on one thread, 13 s on two, while
+    another process was busy)."""
+    from threadpoolctl import threadpool_limits
+
+    return threadpool_limits(limits=1, user_api="openmp")
+
+
+def _select_ensemble(split: _Split, hazard: HazardTreeModel) -> tuple[int, list[float]]:
+    """Number of boosting iterations by validation log-likelihood (the same split by stay and
+    time as the tree; scikit-learn's own early stopping would split rows at random)."""
+    rows, val = split.fit_rows, split.val_rows
+    exposure = hazard.profile.exposure(rows.start, rows.stop, rows.days_in)
+    keep = exposure > 1e-12
+    model = _boosted(100)
+    with _one_thread():
+        model.fit(_ensemble_x(split.x_fit, _rows_weekday(rows))[keep],
+                  rows.event[keep] / exposure[keep],
+                  sample_weight=(rows.weight * exposure)[keep])
+    x_val = _ensemble_x(split.x_val, _rows_weekday(val))
+    # The piecewise-exponential log-likelihood, with the exposure computed once.
+    val_exposure = hazard.profile.exposure(val.start, val.stop, val.days_in)
+    ended = val.event
+    intensity = hazard.profile.intensity(val.stop[ended],
+                                         val.days_in[ended] + (val.stop - val.start)[ended])
+    scores = []
+    with _one_thread():
+        for rate in model.staged_predict(x_val):
+            loglik = -rate * val_exposure
+            loglik[ended] += np.log(np.maximum(rate[ended] * intensity, 1e-300))
+            scores.append(float(np.sum(val.weight * loglik) / np.sum(val.weight)))
+    return int(np.argmax(scores)) + 1, scores
+
+
+def _min_stays(params: Mapping[str, Any], landmarks: Landmarks, rows: IntervalRows) -> int:
+    return max(10, int(params["min_stays_share"] * _n_stays(landmarks, rows)))
+
+
+def _admission_x(design: Design, stays: pd.DataFrame) -> FloatArray:
+    return design.covariate_matrix(stays)
+
+
+def _select_groups(design: Design, stays: pd.DataFrame, cutoff_ns: int
+                   ) -> tuple[dict[str, Any], list[dict[str, Any]]]:
+    """Size of the admission tree by integrated Brier score (days 1..14) on later stays of the
+    held-out half, fitted on the earlier state of the other half."""
+    from sksurv.metrics import integrated_brier_score
+    from sksurv.tree import SurvivalTree
+    from sksurv.util import Surv
+
+    admitted = _ns(stays["admitted_at"])
+    first = int(admitted.min())
+    val_days = min(90.0, 0.25 * (cutoff_ns - first) / NS_PER_DAY)
+    v_ns = int(cutoff_ns - val_days * NS_PER_DAY)
+    held = _stay_hash_half(stays["stay_id"].to_numpy())
+    fit = _stays_at(stays, v_ns)
+    fit_keep = ~held[fit.index]
+    later = _stays_at(stays, cutoff_ns)
+    val_keep = held[later.index] & (admitted[later.index] > v_ns)
+    x_all = _admission_x(design, stays)
+    x_fit, y_fit = x_all[fit.index[fit_keep]], Surv.from_arrays(
+        fit.ended[fit_keep], round_up_to_hours(fit.days[fit_keep]))
+    x_val = x_all[later.index[val_keep]]
+    y_val = Surv.from_arrays(later.ended[val_keep], round_up_to_hours(later.days[val_keep]))
+    times = np.arange(1.0, 15.0)
+    results: list[dict[str, Any]] = []
+    n = int(fit_keep.sum())
+    # Scored are the validation stays within the fitted stays' follow-up; they must run past
+    # the last day scored (scikit-survival refuses times beyond the test data's follow-up).
+    in_range = y_val["time"] <= y_fit["time"].max()
+    usable = (int(in_range.sum()) >= 20 and y_val["time"][in_range].max() > times[-1]
+              and y_fit["time"].max() > times[-1])
+    for depth in GROUP_DEPTH_GRID:
+        for share in (0.05,):
+            leaf = max(30, int(share * n))
+            score = float("nan")
+            if usable:
+                tree = SurvivalTree(max_depth=depth, min_samples_leaf=leaf, low_memory=False)
+                tree.fit(x_fit, y_fit)
+                funcs = tree.predict_survival_function(x_val)
+                est = np.vstack([f(np.minimum(times, f.x[-1])) for f in funcs])
+                score = float(integrated_brier_score(y_fit, y_val[in_range], est[in_range],
+                                                     times))
+            results.append({"max_depth": depth, "leaf_share": share, "val_ibs": score})
+    scored = [r for r in results if not math.isnan(r["val_ibs"])]
+    if not scored:
+        return {"max_depth": 1, "leaf_share": 0.15}, results
+    best = min(r["val_ibs"] for r in scored)
+    chosen = min((r for r in scored if r["val_ibs"] <= best + 1e-4),
+                 key=lambda r: (r["max_depth"], -r["leaf_share"]))
+    return {"max_depth": chosen["max_depth"], "leaf_share": chosen["leaf_share"]}, results
+
+
+def _fit_groups(design: Design, stays: pd.DataFrame, cutoff_ns: int, params: Mapping[str, Any],
+                seed: int) -> StayGroups:
+    table = _stays_at(stays, cutoff_ns)
+    x = _admission_x(design, stays)[table.index]
+    kinds = stays["admission_type"].to_numpy()[table.index]
+    return fit_stay_groups(x, table.days, table.ended, kinds, design.admission_features,
+                           max_depth=int(params["max_depth"]),
+                           min_samples_leaf=max(30, int(params["leaf_share"] * table.index.size)),
+                           rng=seed)
