@@ -27,7 +27,8 @@ from sksurv.tree import SurvivalTree
 from sksurv.util import Surv
 
 from app.stats.kaplan_meier import KaplanMeier, kaplan_meier
-from app.stats.phasetype import Coxian, CoxianSelection, select_coxian
+from app.stats.phasetype import Coxian
+from app.stats.phasetype_fit import CoxianSelection, select_coxian
 from app.stats.survival_tree import FeatureSpec, TreeRules
 
 __all__ = ["StayGroup", "StayGroups", "fit_stay_groups", "round_up_to_hours"]

@@ -71,6 +71,11 @@ def get_engine(url: str) -> Engine:
     return _entry(url)[0]
 
 
+def session_factory(url: str) -> sessionmaker[Session]:
+    """The sessionmaker of ``url``'s engine, for code that must hold two sessions at once."""
+    return _entry(url)[1]
+
+
 def release_engine(url: str) -> None:
     """Close this process's idle connections to ``url`` and forget its engine.
 

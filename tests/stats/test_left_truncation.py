@@ -13,7 +13,8 @@ from lifelines import KaplanMeierFitter
 from scipy import stats
 
 from app.stats.kaplan_meier import kaplan_meier
-from app.stats.phasetype import Coxian, fit_coxian, log_likelihood, select_coxian
+from app.stats.phasetype import Coxian
+from app.stats.phasetype_fit import fit_coxian, log_likelihood, select_coxian
 from app.stats.stay_groups import fit_stay_groups
 from app.stats.survival_tree import FeatureSpec
 

