@@ -11,9 +11,9 @@ from app.stats.occupancy import (
     ArrivalStream,
     BookedAdmissions,
     StayMixture,
+    draw_paths,
     occupancy_days,
     simulate_paths,
-    draw_paths,
     stream_presence,
     with_exact_marginals,
 )
