@@ -25,7 +25,6 @@ from app.stats.planning import (
     PatientGroup,
     PlanningInput,
     PlanningResult,
-    _stay_quantile,
     beds_needed,
     capacity_curve,
     demand_scale_for_occupancy,
@@ -35,6 +34,7 @@ from app.stats.planning import (
     simulate,
     t_interval,
 )
+from app.stats.planning.demand import _stay_quantile
 from app.stats.planning_scenarios import (
     MoveElectives,
     MoveGroupShare,
