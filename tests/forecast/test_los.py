@@ -326,8 +326,7 @@ def test_hazard_tree_predicts_better_than_a_log_rank_tree_on_the_landmarks(
     mean_remaining = np.array([np.trapezoid(np.r_[1.0, f.y], np.r_[0.0, f.x])
                                for f in tree.predict_survival_function(x_test)])
     theirs = survival_metrics(test.ended, test.remaining_days, curves(tree, x_test, EVAL_DAYS),
-                              np.trapezoid(on_grid, grid, axis=1), mean_remaining,
-                              train.ended, train.remaining_days)
+                              np.trapezoid(on_grid, grid, axis=1), mean_remaining)
     ours = payloads[unit]["metrics"]["tree"]
     print(f"\n{unit}: hazard tree {ours}; log-rank landmark tree (depth {depth}, leaf {leaf}) "
           f"{theirs}")

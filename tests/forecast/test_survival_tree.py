@@ -307,10 +307,7 @@ def test_integrated_brier_score_matches_the_uncensored_formula(medpar: pd.DataFr
     expected_days = los * rng.uniform(0.5, 1.5, los.size)
     surv_days = np.exp(-np.arange(1.0, 15.0)[None, :] / expected_days[:, None])
     every = np.ones(los.size, dtype=bool)
-    # One longer training stay keeps every test stay inside the censoring curve's support.
-    train = np.r_[los, los.max() + 1.0]
-    got = survival_metrics(every, los, surv_days, expected_days, expected_days,
-                           np.ones(train.size, dtype=bool), train)
+    got = survival_metrics(every, los, surv_days, expected_days, expected_days)
     days = np.arange(1.0, 15.0)
     brier = np.mean(((los[:, None] > days[None, :]).astype(float) - surv_days) ** 2, axis=0)
     expected = np.sum((brier[1:] + brier[:-1]) / 2) / (days[-1] - days[0])
@@ -323,13 +320,61 @@ def test_metrics_match_lifelines_and_scikit_learn(medpar: pd.DataFrame) -> None:
     expected_days = medpar["los"].to_numpy(float) * rng.uniform(0.5, 1.5, durations.size)
     surv_days = np.exp(-np.arange(1.0, 15.0)[None, :] / expected_days[:, None])
     mean_remaining = expected_days + rng.normal(0, 2, durations.size)
-    got = survival_metrics(observed, durations, surv_days, expected_days, mean_remaining,
-                           observed, durations)
-    # lifelines' concordance_index takes scores that grow with survival time.
-    assert got["concordance"] == pytest.approx(
+    got = survival_metrics(observed, durations, surv_days, expected_days, mean_remaining)
+    # lifelines' concordance_index (Harrell's C) takes scores that grow with survival time.
+    assert got["concordance_harrell"] == pytest.approx(
         concordance_index(durations, expected_days, observed), abs=1e-9)
     assert got["r2_completed"] == pytest.approx(
         r2_score(durations[observed], mean_remaining[observed]), abs=1e-12)
+
+
+def test_uno_concordance_without_censoring_is_harrells_below_the_horizon(
+        medpar: pd.DataFrame) -> None:
+    # Uno et al. 2011 (Stat Med 30:1105-1117; from memory): without censoring every inverse
+    # probability of censoring weight is 1, so Uno's C truncated at tau counts the same pairs
+    # as Harrell's C among stays shorter than tau. Reference: lifelines' concordance_index.
+    los = medpar["los"].to_numpy(float) - 0.5
+    rng = np.random.default_rng(9)
+    expected_days = los * rng.uniform(0.5, 1.5, los.size)
+    surv_days = np.exp(-np.arange(1.0, 15.0)[None, :] / expected_days[:, None])
+    short = los < 14.0
+    # Stays of 14 days or more would be comparable pairs for Harrell but not below tau: the
+    # reference sample holds only the shorter ones (and the metric sees only those too).
+    got = survival_metrics(np.ones(short.sum(), dtype=bool), los[short], surv_days[short],
+                           expected_days[short], expected_days[short])
+    reference = concordance_index(los[short], expected_days[short])
+    assert got["concordance"] == pytest.approx(reference, abs=1e-9)
+    assert got["concordance_harrell"] == pytest.approx(reference, abs=1e-9)
+
+
+def test_brier_weights_come_from_the_test_samples_own_censoring(medpar: pd.DataFrame) -> None:
+    # The integrated Brier score with inverse-probability-of-censoring weights (Graf et al.
+    # 1999, Stat Med 18:2529-2545), the censoring curve estimated by lifelines'
+    # KaplanMeierFitter from the same (test) sample; the weights at the evaluation days use
+    # G(t) and a stay that ended at T_i <= t uses G(T_i) (scikit-survival's convention).
+    from lifelines import KaplanMeierFitter
+
+    los = medpar["los"].to_numpy(float) - 0.5
+    rng = np.random.default_rng(10)
+    follow = rng.uniform(0.0, 30.0, los.size)  # heavy, test-period-like censoring
+    durations, observed = np.minimum(los, follow), los <= follow
+    expected_days = los * rng.uniform(0.5, 1.5, los.size)
+    surv_days = np.exp(-np.arange(1.0, 15.0)[None, :] / expected_days[:, None])
+    got = survival_metrics(observed, durations, surv_days, expected_days, expected_days)
+    km = KaplanMeierFitter().fit(durations, ~observed)
+    days = np.arange(1.0, 15.0)
+    g_days = km.survival_function_at_times(days).to_numpy()
+    g_own = km.survival_function_at_times(durations).to_numpy()
+    brier = []
+    for k, day in enumerate(days):
+        ended = (durations <= day) & observed
+        later = durations > day
+        score = (np.where(ended, surv_days[:, k] ** 2 / np.where(ended, g_own, 1.0), 0.0)
+                 + np.where(later, (1.0 - surv_days[:, k]) ** 2 / g_days[k], 0.0))
+        brier.append(score.mean())
+    brier = np.array(brier)
+    expected = np.sum((brier[1:] + brier[:-1]) / 2) / (days[-1] - days[0])
+    assert got["ibs_1_14"] == pytest.approx(expected, rel=1e-6)
 
 
 def test_stay_groups_curves_and_shares(medpar: pd.DataFrame) -> None:

@@ -30,10 +30,9 @@ RMST_GRID = np.arange(0.0, 14.0 + 1e-9, 0.25)
 
 
 def survival_metrics(event: npt.ArrayLike, remaining: npt.ArrayLike, surv_days: FloatArray,
-                     rmst: FloatArray, mean_remaining: FloatArray,
-                     train_event: npt.ArrayLike, train_remaining: npt.ArrayLike
-                     ) -> dict[str, float]:
-    """Concordance, integrated Brier score (days 1..14) and variance explained.
+                     rmst: FloatArray, mean_remaining: FloatArray) -> dict[str, float]:
+    """Concordance (Uno's and Harrell's), integrated Brier score (days 1..14) and variance
+    explained, on one test sample.
 
     Parameters
     ----------
@@ -43,49 +42,72 @@ def survival_metrics(event: npt.ArrayLike, remaining: npt.ArrayLike, surv_days: 
         Predicted P(still in) 1, 2, ..., 14 days after the landmark.
     rmst : ndarray, shape (n,)
         Predicted expected days in the unit over the next 14 (restricted mean): the risk score
-        for Harrell's concordance (shorter expected stay = higher risk of leaving).
+        for concordance (shorter expected stay = higher risk of leaving).
     mean_remaining : ndarray, shape (n,)
         Predicted mean remaining stay, for the variance explained on completed stays
         (1 - residual sum of squares / total sum of squares, as a regression tree's).
-    train_event, train_remaining
-        Training outcomes, for the censoring weights of the Brier score (IPCW).
 
-    Uses ``sksurv.metrics.concordance_index_censored`` and ``integrated_brier_score``.
+    The test sample is censored by the end of the test period, far more heavily than the
+    training stays, so the inverse-probability-of-censoring weights of the Brier score and of
+    Uno's C come from the test sample's own censoring (Graf et al. 1999, Stat Med
+    18:2529-2545; Uno et al. 2011, Stat Med 30:1105-1117; cited from memory). ``concordance``
+    is Uno's C truncated at 14 days (METHODS.md: Uno's C for censored data);
+    ``concordance_harrell`` is Harrell's. Uses ``sksurv.metrics``.
     """
-    from sksurv.metrics import concordance_index_censored, integrated_brier_score
+    from sksurv.metrics import (
+        concordance_index_censored,
+        concordance_index_ipcw,
+        integrated_brier_score,
+    )
     from sksurv.util import Surv
 
     d = np.asarray(event, dtype=bool)
     t = np.asarray(remaining, dtype=float)
-    train_d = np.asarray(train_event, dtype=bool)
-    train_t = np.asarray(train_remaining, dtype=float)
-    if train_t.size > MAX_CENSORING_SAMPLE:
-        # The censoring distribution for the Brier weights from a fixed random sample of the
-        # training outcomes: the same curve within sampling error, at a fraction of the time.
-        pick = np.random.default_rng(2).choice(train_t.size, MAX_CENSORING_SAMPLE,
-                                               replace=False)
-        train_d, train_t = train_d[pick], train_t[pick]
-    y_train = Surv.from_arrays(train_d, train_t)
+    estimate = -np.asarray(rmst, dtype=float)
     nan = float("nan")
+    censoring = _censoring_sample(d, t)
     # Too short a test period has no comparable pair, or no follow-up to day 14: those
     # figures are then NaN (stored as null) rather than an error.
     try:
-        concordance = float(concordance_index_censored(d, t, -np.asarray(rmst))[0])
+        harrell = float(concordance_index_censored(d, t, estimate)[0])
     except (ValueError, ZeroDivisionError):
-        concordance = nan
-    usable = t < y_train["time"].max()
+        harrell = nan
+    uno = nan
+    if d.any():
+        try:
+            uno = float(concordance_index_ipcw(censoring, Surv.from_arrays(d, t), estimate,
+                                               tau=float(EVAL_DAYS[-1]))[0])
+        except (ValueError, ZeroDivisionError):
+            uno = nan
+    # The censoring curve must stay above zero over the evaluation days, and the sample must
+    # reach past both ends of them.
     ibs = nan
-    # The censoring weights need an ended stay in each set (a unit with few stays may have
-    # none in its test period).
-    if (usable.any() and t[usable].max() > EVAL_DAYS[-1] and t[usable].min() < EVAL_DAYS[0]
-            and d[usable].any() and train_d.any()):
-        y_test = Surv.from_arrays(d[usable], t[usable])
-        ibs = float(integrated_brier_score(y_train, y_test, surv_days[usable], EVAL_DAYS))
+    if d.any() and t.max() > EVAL_DAYS[-1] and t.min() < EVAL_DAYS[0]:
+        try:
+            ibs = float(integrated_brier_score(censoring, Surv.from_arrays(d, t), surv_days,
+                                               EVAL_DAYS))
+        except ValueError:
+            ibs = nan
     y = t[d]
     pred = np.asarray(mean_remaining)[d]
     ss_tot = float(np.sum((y - y.mean()) ** 2)) if y.size else 0.0
     r2 = 1.0 - float(np.sum((y - pred) ** 2)) / ss_tot if ss_tot > 0 else nan
-    return {"concordance": concordance, "ibs_1_14": ibs, "r2_completed": r2}
+    return {"concordance": uno, "concordance_harrell": harrell, "ibs_1_14": ibs,
+            "r2_completed": r2}
+
+
+def _censoring_sample(event: npt.NDArray[np.bool_], remaining: FloatArray) -> Any:
+    """The outcomes the censoring curve is estimated from: the test sample itself, or a fixed
+    random part of it when it is large (the same curve within sampling error, much faster);
+    the longest outcome is always kept so the curve covers every test time."""
+    from sksurv.util import Surv
+
+    d, t = event, remaining
+    if t.size > MAX_CENSORING_SAMPLE:
+        pick = np.random.default_rng(2).choice(t.size, MAX_CENSORING_SAMPLE, replace=False)
+        pick = np.union1d(pick, [int(np.argmax(t))])
+        d, t = d[pick], t[pick]
+    return Surv.from_arrays(d, t)
 
 
 def _curve_summaries(curves: _Curves, at_ns: IntArray) -> tuple[FloatArray, FloatArray,
@@ -150,16 +172,13 @@ def _test_metrics(model: LosModel, train_lm: Landmarks, train_rows: IntervalRows
     steps = HORIZON_STEPS + 1
     curves = _landmark_curves(model, test_lm, tz, steps)
     event, remaining = test_lm.ended, test_lm.remaining_days
-    train_event, train_remaining = train_lm.ended, train_lm.remaining_days
     out: dict[str, Any] = {"landmarks": int(test_lm.size),
                            "stays": int(np.unique(test_lm.stay_index).size)}
-    tree = survival_metrics(event, remaining, *_curve_summaries(curves, test_lm.at_ns),
-                            train_event, train_remaining)
+    tree = survival_metrics(event, remaining, *_curve_summaries(curves, test_lm.at_ns))
     cutoff_ns = int(train_lm.end_ns.max())
     table = _stays_at(train_lm.stays, cutoff_ns)
     km = kaplan_meier(round_up_to_hours(table.days), table.ended)
-    baseline = survival_metrics(event, remaining, *_km_summaries(km, test_lm.days_in),
-                                train_event, train_remaining)
+    baseline = survival_metrics(event, remaining, *_km_summaries(km, test_lm.days_in))
     out["tree"], out["km"] = tree, baseline
     if ensemble_iter is not None:
         rows = _thin_rows(train_rows, MAX_ENSEMBLE_ROWS, np.random.default_rng(1))
@@ -173,8 +192,7 @@ def _test_metrics(model: LosModel, train_lm: Landmarks, train_rows: IntervalRows
                          sample_weight=(rows.weight * exposure)[keep])
             boosted = curves.with_rates(ensemble.predict(x_test))
         out["ensemble"] = survival_metrics(event, remaining,
-                                           *_curve_summaries(boosted, test_lm.at_ns),
-                                           train_event, train_remaining)
+                                           *_curve_summaries(boosted, test_lm.at_ns))
         # What the readable tree gives up, relative to the ensemble (positive: tree worse).
         out["ensemble_gap"] = {
             "ibs_1_14": tree["ibs_1_14"] / out["ensemble"]["ibs_1_14"] - 1.0,
