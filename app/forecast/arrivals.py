@@ -194,6 +194,8 @@ def train_arrivals(state: UnitState) -> dict[str, Any]:
             "p_go_by_lead": _p_go_by_lead(state),
             "hour_profile": hourly_profile(admitted[elective].dt.hour).tolist(),
             "unbooked_by_weekday_lead": _unbooked_rates(state),
+            "never_booked_by_weekday": _never_booked_rates(state),
+            "booking_hour_profile": _booking_hours(state).tolist(),
         },
     }
 
@@ -251,6 +253,71 @@ def _unbooked_rates(state: UnitState) -> list[list[float]]:
         on = (weekdays == w).to_numpy()
         row = [float(((lead[on] <= L)).sum()) / max(int(n_days[w]), 1) for L in range(MAX_LEAD + 1)]
         out.append(row)
+    return out
+
+
+def _recent_electives(state: UnitState) -> tuple[pd.DataFrame, pd.Series, date, date]:
+    stays = state.stays
+    first, last = _window(state, ELECTIVE_WINDOW_DAYS)
+    elective = stays.loc[stays["admission_type"] == "elective"]
+    admitted_day = _local(elective["admitted_at"], state).dt.date
+    keep = (admitted_day >= first) & (admitted_day <= last)
+    return elective.loc[keep], admitted_day.loc[keep], first, last
+
+
+def _never_booked_rates(state: UnitState) -> list[float]:
+    """[weekday] mean elective admissions with no booking at all (never known in advance)."""
+    elective, admitted_day, first, last = _recent_electives(state)
+    never = elective["booking_id"].isna().to_numpy()
+    weekdays = np.array([d.weekday() for d in admitted_day], dtype=int)
+    n_days = np.bincount([(first + timedelta(days=i)).weekday()
+                          for i in range((last - first).days + 1)], minlength=7)
+    counts = np.bincount(weekdays[never], minlength=7) if never.any() else np.zeros(7)
+    return [float(counts[w]) / max(int(n_days[w]), 1) for w in range(7)]
+
+
+def _booking_hours(state: UnitState) -> np.ndarray:
+    """Share of bookings made in each local clock hour (those of the recent window's
+    electives), to tell how much of a day's booking is still to come at the forecast's hour."""
+    elective, _, _, _ = _recent_electives(state)
+    booked = state.bookings.set_index("booking_id")["booked_at"]
+    made = elective["booking_id"].map(booked).dropna()
+    return hourly_profile(_local(made, state).dt.hour)
+
+
+def _share_still_to_come(profile: list[float], local: datetime) -> float:
+    """The share of a day's bookings made after the local clock time ``local``."""
+    hour = local.hour
+    rest_of_hour = 1.0 - (local.minute * 60 + local.second) / 3600.0
+    return float(sum(profile[hour + 1:]) + profile[hour] * rest_of_hour)
+
+
+def unbooked_means(elective: Mapping[str, Any], span: list[date], as_of_local: datetime
+                   ) -> list[float]:
+    """Expected elective admissions on each day of ``span`` whose booking is not known at
+    ``as_of_local`` (site clock): never booked, or booked later than now.
+
+    ``unbooked_by_weekday_lead[w][L]`` counts the electives on a day D booked on or after
+    day D - L. For a day L days ahead that includes today's bookings, and those made earlier
+    today are already known bookings, counted once as such: only the share of today's
+    booking still to come (the booking clock profile after now) stays in the unknown part.
+    A model trained before these terms were stored keeps the whole-day count.
+    """
+    table = elective["unbooked_by_weekday_lead"]
+    never = elective.get("never_booked_by_weekday")
+    profile = elective.get("booking_hour_profile")
+    today = as_of_local.date()
+    to_come = None if profile is None else _share_still_to_come(profile, as_of_local)
+    out = []
+    for day in span:
+        ahead = (day - today).days
+        row = table[day.weekday()]
+        whole = row[min(ahead, MAX_LEAD)]
+        if never is None or to_come is None or ahead > MAX_LEAD:
+            out.append(whole)  # (beyond the longest lead every booking is still to come)
+            continue
+        later = never[day.weekday()] if ahead == 0 else row[ahead - 1]
+        out.append(later + max(whole - later, 0.0) * to_come)
     return out
 
 

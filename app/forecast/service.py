@@ -24,6 +24,7 @@ from app.forecast.arrivals import (
     emergency_rate,
     excess_beds,
     train_arrivals,
+    unbooked_means,
 )
 from app.forecast.los import LosModel, predict_stays, train_los
 from app.forecast.models import newest_model, save_model
@@ -203,9 +204,9 @@ def forecast_backdrop(state: UnitState, record: ModelRecord, *, days: int = DEFA
     emergency = _hourly_stream("emergency", state, today, emergency_means(state, arrivals, span),
                                arrivals["emergency"]["hour_profile"], rate.size,
                                _newcomer_stay(los, "emergency"))
-    unbooked_table = arrivals["elective"]["unbooked_by_weekday_lead"]
-    unbooked_means = [unbooked_table[d.weekday()][min((d - today).days, MAX_LEAD)] for d in span]
-    unbooked = _hourly_stream("elective", state, today, unbooked_means,
+    not_yet_booked = unbooked_means(arrivals["elective"], span,
+                                    state.as_of.tz_convert(state.tz).to_pydatetime())
+    unbooked = _hourly_stream("elective", state, today, not_yet_booked,
                               arrivals["elective"]["hour_profile"], None,
                               _newcomer_stay(los, "elective"))
     census_at = np.array([_days_after(h, state.as_of) for h in instants])
