@@ -8,7 +8,7 @@ would have been made then from the same data.
 from __future__ import annotations
 
 import json
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from datetime import UTC, date, datetime, time, timedelta
 from functools import cached_property
 from typing import Any
@@ -28,6 +28,7 @@ from app.forecast.arrivals import (
 )
 from app.forecast.los import LosModel, predict_stays, train_los
 from app.forecast.models import newest_model, save_model
+from app.forecast.newcomer_clock import elapsed
 from app.state import UnitState, load_state
 from app.stats.occupancy import (
     ArrivalStream,
@@ -98,6 +99,16 @@ def _hourly_stream(name: str, state: UnitState, first_day: date, day_means: list
     return ArrivalStream(name, tuple(at), tuple(mean), tuple(day), size, stay)
 
 
+def _on_clock(los: LosModel, state: UnitState, offsets: list[float] | tuple[float, ...],
+              census_at: np.ndarray) -> np.ndarray:
+    """(arrivals, instants) time on the unit's discharge clock from each arrival (days after
+    as_of) to each census instant (``app.forecast.newcomer_clock``)."""
+    origin = state.as_of.value
+    start = origin + np.round(np.asarray(offsets, dtype=float) * NS_PER_DAY).astype(np.int64)
+    census = origin + np.round(census_at * NS_PER_DAY).astype(np.int64)
+    return elapsed(los.hazard.profile, state.tz, start, census)
+
+
 def _newcomer_stay(los: LosModel, admission_type: str) -> StayMixture:
     parts = [(g.share.get(admission_type, 0.0), g.distribution) for g in los.groups.groups]
     parts = [(w, d) for w, d in parts if w > 0] or [(1.0, g.distribution)
@@ -132,6 +143,16 @@ def _booked(state: UnitState, los: LosModel, elective: dict[str, Any], last_day:
         admit_at.append(offset)
         stays.append(los.groups.get(int(group)).distribution)
     return BookedAdmissions(tuple(p_go), tuple(admit_at), tuple(stays))
+
+
+def _with_clock(los: LosModel, state: UnitState, census_at: np.ndarray,
+                booked: BookedAdmissions, streams: list[ArrivalStream]
+                ) -> tuple[BookedAdmissions, list[ArrivalStream]]:
+    """The newcomers with their stays on the unit's discharge clock."""
+    if booked.stays:
+        booked = replace(booked, clock=_on_clock(los, state, booked.admit_at, census_at))
+    return booked, [replace(s, clock=_on_clock(los, state, s.slot_at, census_at))
+                    for s in streams]
 
 
 def forecast(session: Session, unit: str, as_of: datetime, tz: ZoneInfo, *,
@@ -210,8 +231,9 @@ def forecast_backdrop(state: UnitState, record: ModelRecord, *, days: int = DEFA
                               arrivals["elective"]["hour_profile"], None,
                               _newcomer_stay(los, "elective"))
     census_at = np.array([_days_after(h, state.as_of) for h in instants])
-    booked = _booked(state, los, arrivals["elective"], local_days[-1])
-    streams = [emergency, unbooked]
+    booked, streams = _with_clock(los, state, census_at,
+                                  _booked(state, los, arrivals["elective"], local_days[-1]),
+                                  [emergency, unbooked])
     beds = [state.beds_on(d) for d in local_days]
     stay_ids = tuple(str(s) for s in state.stays.loc[state.present_mask(state.as_of), "stay_id"])
     draws = None

@@ -130,6 +130,10 @@ class ArrivalStream:
         Negative binomial size r of a day's count (None: Poisson).
     stay : StayDistribution
         Length of stay of these arrivals, in days.
+    clock : numpy.ndarray, shape (slots, instants), optional
+        Time the stay distribution runs on from each slot to each census instant (the unit's
+        discharge clock: ``app.forecast.newcomer_clock``); None: calendar days (the census
+        instant minus the slot).
     """
 
     name: str
@@ -138,15 +142,36 @@ class ArrivalStream:
     slot_day: tuple[int, ...]
     size: float | None
     stay: Any
+    clock: Any = None
+
+    def lags(self, census_at: FloatArray) -> FloatArray:
+        """(slots, instants) time each slot's arrivals have been in at each instant, on the
+        stream's clock (positive only where the instant comes after the arrival)."""
+        at = np.asarray(self.slot_at, dtype=float)
+        calendar = census_at[None, :] - at[:, None]
+        if self.clock is None:
+            return calendar
+        return np.where(calendar > 0, np.asarray(self.clock, dtype=float), calendar)
 
 
 @dataclass(frozen=True)
 class BookedAdmissions:
-    """Known bookings: each goes ahead with ``p_go``, admitted ``admit_at`` days after as_of."""
+    """Known bookings: each goes ahead with ``p_go``, admitted ``admit_at`` days after as_of;
+    ``clock`` (bookings, instants), when given, is the time their stays run on from admission
+    to each census instant (as :class:`ArrivalStream`'s)."""
 
     p_go: tuple[float, ...]
     admit_at: tuple[float, ...]
     stays: tuple[Any, ...]
+    clock: Any = None
+
+    def lags(self, census_at: FloatArray) -> FloatArray:
+        """(bookings, instants) time in the unit at each instant on the bookings' clock
+        (negative before admission)."""
+        calendar = census_at[None, :] - np.asarray(self.admit_at, dtype=float)[:, None]
+        if self.clock is None:
+            return calendar
+        return np.where(calendar >= 0, np.asarray(self.clock, dtype=float), calendar)
 
     def p_present(self, census_at: FloatArray) -> FloatArray:
         """(bookings, instants) probability each booking's patient is in at each instant."""
@@ -155,10 +180,12 @@ class BookedAdmissions:
         by_stay: dict[int, list[int]] = {}
         for j, stay in enumerate(self.stays):
             by_stay.setdefault(id(stay), []).append(j)
+        all_lags = self.lags(census_at) if self.stays else np.zeros((0, census_at.size))
+        calendar = census_at[None, :] - np.asarray(self.admit_at, dtype=float)[:, None]
         for rows in by_stay.values():
             stay = self.stays[rows[0]]
-            lags = census_at[None, :] - np.asarray(self.admit_at, dtype=float)[rows][:, None]
-            after = lags >= 0
+            lags = all_lags[rows]
+            after = calendar[rows] >= 0
             survival = _sf_once(stay, np.where(after, lags, 0.0))
             out[rows] = np.where(after, survival, 0.0) * np.asarray(self.p_go)[rows][:, None]
         return out
@@ -192,8 +219,8 @@ def stream_presence(stream: ArrivalStream, census_at: FloatArray) -> FloatArray:
     out = np.zeros((n_days, census_at.size))
     if not at.size:
         return out
-    lags = census_at[None, :] - at[:, None]
-    before = lags > 0
+    before = census_at[None, :] - at[:, None] > 0
+    lags = stream.lags(census_at)
     survival = np.where(before, _sf_once(stream.stay, np.where(before, lags, 0.0)), 0.0)
     present = mean[:, None] * survival
     for k in range(census_at.size):
@@ -398,10 +425,13 @@ def draw_paths(
     h = np.asarray(census_at, dtype=float)
     stay_draws = rng.random((n_paths, n_stays)) if n_stays else np.zeros((n_paths, 0))
     counts = np.zeros((n_paths, h.size), dtype=np.int64)
-    for g, a, stay in zip(booked.p_go, booked.admit_at, booked.stays, strict=True):
+    booked_lags = booked.lags(h) if booked.stays else np.zeros((0, h.size))
+    for j, (g, a, stay) in enumerate(zip(booked.p_go, booked.admit_at, booked.stays,
+                                         strict=True)):
         goes = rng.random(n_paths) < g
         length = np.asarray(stay.sample(n_paths, rng), dtype=float)
-        counts += (goes[:, None] & (h[None, :] >= a) & (h[None, :] < a + length[:, None]))
+        counts += (goes[:, None] & (h[None, :] >= a)
+                   & (booked_lags[j][None, :] < length[:, None]))
     drawn = [_stream_arrivals(stream, h, n_paths, rng) for stream in streams]
     path = np.concatenate([d[0] for d in drawn]) if drawn else np.zeros(0, dtype=np.int64)
     arrive = np.concatenate([d[1] for d in drawn]) if drawn else np.zeros(0)
@@ -453,6 +483,7 @@ def _stream_arrivals(stream: ArrivalStream, h: FloatArray, n_paths: int,
     at = np.asarray(stream.slot_at, dtype=float)
     mean = np.asarray(stream.slot_mean, dtype=float)
     day = np.asarray(stream.slot_day, dtype=int)
+    lags = stream.lags(h) if at.size else np.zeros((0, h.size))
     paths, times, present = [], [], []
     for d in np.unique(day):
         slots = np.flatnonzero(day == d)
@@ -466,12 +497,12 @@ def _stream_arrivals(stream: ArrivalStream, h: FloatArray, n_paths: int,
         total = int(n.sum())
         if total == 0:
             continue
-        arrive = at[slots][rng.choice(slots.size, size=total, p=mean[slots] / day_mean)]
+        slot = slots[rng.choice(slots.size, size=total, p=mean[slots] / day_mean)]
+        arrive = at[slot]
         length = np.asarray(stream.stay.sample(total, rng), dtype=float)
         paths.append(np.repeat(np.arange(n_paths), n))
         times.append(arrive)
-        present.append((h[None, :] > arrive[:, None])
-                       & (h[None, :] < arrive[:, None] + length[:, None]))
+        present.append((h[None, :] > arrive[:, None]) & (lags[slot] < length[:, None]))
     if not paths:
         return np.zeros(0, dtype=np.int64), np.zeros(0), np.zeros((0, h.size), dtype=bool)
     return np.concatenate(paths), np.concatenate(times), np.concatenate(present)
