@@ -85,23 +85,39 @@ def _baselines(known: UnitState, record: ModelRecord, instants: list[datetime],
                history: pd.Series) -> dict[str, list[np.ndarray]]:
     """The five baselines' pmfs at each instant, from what ``known`` knew."""
     n = len(instants)
-    out: dict[str, list[np.ndarray]] = {}
-    last = int(history.iloc[-1])
-    values = history.to_numpy()
-    out["yesterday"] = []
-    for k in range(1, n + 1):
-        changes = values[k:] - values[:-k]
-        out["yesterday"].append(_empirical_pmf(last + changes[-182:]))
-    out["same_weekday"] = []
-    for h in instants:
-        same = history[[i.weekday() == h.astimezone(known.tz).weekday()
-                        for i in history.index.tz_convert(known.tz)]]
-        out["same_weekday"].append(_empirical_pmf(same.to_numpy()[-8:]))
+    census_at = np.array([(pd.Timestamp(h) - known.as_of).value / 86_400e9 for h in instants])
+    return {
+        "yesterday": yesterday_baseline(history, n),
+        "same_weekday": same_weekday_baseline(history, instants, known.tz),
+        "mean_stay": _mean_stay_baseline(known, record, census_at),
+        "one_distribution": one_distribution_baseline(known, census_at),
+        "time_series": _sarimax(history.to_numpy()[-365:], n,
+                                kmax=int(history.to_numpy().max() * 2 + 10)),
+    }
 
+
+def yesterday_baseline(history: pd.Series, steps: int) -> list[np.ndarray]:
+    """Persistence: the last census plus the k-step census changes of the last half year."""
+    values = history.to_numpy()
+    last = int(values[-1])
+    return [_empirical_pmf(last + (values[k:] - values[:-k])[-182:]) for k in range(1, steps + 1)]
+
+
+def same_weekday_baseline(history: pd.Series, instants: list[datetime], tz: ZoneInfo
+                          ) -> list[np.ndarray]:
+    """The census at the same local weekday over the last eight weeks, as it was."""
+    weekdays = np.array([i.weekday() for i in history.index.tz_convert(tz)])
+    values = history.to_numpy()
+    return [_empirical_pmf(values[weekdays == h.astimezone(tz).weekday()][-8:])
+            for h in instants]
+
+
+def _mean_stay_baseline(known: UnitState, record: ModelRecord, census_at: np.ndarray
+                        ) -> list[np.ndarray]:
+    """Deterministic departures at each group's mean remaining stay; Morrow's arrivals."""
+    n = census_at.size
     los = LosModel.from_payload(record.payload)
     current = known.current_stays()
-    census_at = np.array([(pd.Timestamp(h) - known.as_of).value / 86_400e9 for h in instants])
-    # mean_stay: deterministic departures, Morrow's arrivals.
     morrow_like = forecast_inputs(known, record, n)
     groups = los.groups.group_of(los.design.covariate_matrix(current)) if len(current) else []
     leave = np.array([los.groups.get(int(g)).distribution.conditional(float(d)).mean()
@@ -110,26 +126,29 @@ def _baselines(known: UnitState, record: ModelRecord, instants: list[datetime],
              else np.zeros((0, n)))
     det_days = occupancy_days(p_det, morrow_like.booked, morrow_like.streams, census_at,
                               [None] * n, morrow_like.limits)
-    out["mean_stay"] = [d.pmf for d in det_days]
-    # one_distribution: one KM for everyone, constant Poisson arrivals.
+    return [d.pmf for d in det_days]
+
+
+def one_distribution_baseline(known: UnitState, census_at: np.ndarray) -> list[np.ndarray]:
+    """One Kaplan-Meier stay curve for everyone (current patients given their days in) and
+    Poisson arrivals at the past year's mean daily rate, in hourly slots."""
+    n = census_at.size
+    current = known.current_stays()
     hist = known.history()
     km = kaplan_meier(hist["los_days"].clip(lower=0).to_numpy(), hist["event"].to_numpy())
     spent = current["days_in"].to_numpy()
     s_now = np.maximum(km.sf(spent), 1e-12)
     p_km = ((km.sf(spent[:, None] + census_at[None, :]) / s_now[:, None]) if len(current)
             else np.zeros((0, n)))
-    year_ago = known.as_of - pd.Timedelta(days=365)
-    recent = hist.loc[hist["admitted_at"] > max(year_ago, hist["admitted_at"].min())]
-    span = max((known.as_of - recent["admitted_at"].min()).total_seconds() / 86400, 1.0)
-    rate = len(recent) / span
+    # Admissions in the last year (or since the first admission, if later) over its length.
+    opens = max(known.as_of - pd.Timedelta(days=365), hist["admitted_at"].min())
+    recent = hist.loc[hist["admitted_at"] > opens]
+    rate = len(recent) / max((known.as_of - opens).total_seconds() / 86400, 1.0)
     slots = np.arange(1, int(math.ceil(census_at[-1] * 24)) + 1) / 24 - 1 / 48
     stream = ArrivalStream("emergency", tuple(slots), tuple([rate / 24] * slots.size),
                            tuple((slots // 1).astype(int)), None, _KmStay(km))
     km_days = occupancy_days(p_km, BookedAdmissions((), (), ()), [stream], census_at, [None] * n)
-    out["one_distribution"] = [d.pmf for d in km_days]
-    # time_series: SARIMAX on the last year of daily census.
-    out["time_series"] = _sarimax(history.to_numpy()[-365:], n, kmax=int(values.max() * 2 + 10))
-    return out
+    return [d.pmf for d in km_days]
 
 
 class _KmStay:
