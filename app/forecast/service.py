@@ -109,9 +109,14 @@ def _on_clock(los: LosModel, state: UnitState, offsets: list[float] | tuple[floa
     return elapsed(los.hazard.profile, state.tz, start, census)
 
 
+def _stay_of(los: LosModel, group: Any) -> Any:
+    """A group's stay for newcomers: on the discharge clock when the model has those fits."""
+    return group.clock_distribution if los.groups.on_clock else group.distribution
+
+
 def _newcomer_stay(los: LosModel, admission_type: str) -> StayMixture:
-    parts = [(g.share.get(admission_type, 0.0), g.distribution) for g in los.groups.groups]
-    parts = [(w, d) for w, d in parts if w > 0] or [(1.0, g.distribution)
+    parts = [(g.share.get(admission_type, 0.0), _stay_of(los, g)) for g in los.groups.groups]
+    parts = [(w, d) for w, d in parts if w > 0] or [(1.0, _stay_of(los, g))
                                                     for g in los.groups.groups]
     return StayMixture(tuple(w for w, _ in parts), tuple(d for _, d in parts))
 
@@ -141,14 +146,17 @@ def _booked(state: UnitState, los: LosModel, elective: dict[str, Any], last_day:
         offset = max(_days_after(when, state.as_of), 1 / 24)
         p_go.append(float(p_go_by_lead[lead]))
         admit_at.append(offset)
-        stays.append(los.groups.get(int(group)).distribution)
+        stays.append(_stay_of(los, los.groups.get(int(group))))
     return BookedAdmissions(tuple(p_go), tuple(admit_at), tuple(stays))
 
 
 def _with_clock(los: LosModel, state: UnitState, census_at: np.ndarray,
                 booked: BookedAdmissions, streams: list[ArrivalStream]
                 ) -> tuple[BookedAdmissions, list[ArrivalStream]]:
-    """The newcomers with their stays on the unit's discharge clock."""
+    """The newcomers with their stays on the unit's discharge clock (a model trained before
+    the clock fits existed keeps calendar time)."""
+    if not los.groups.on_clock:
+        return booked, streams
     if booked.stays:
         booked = replace(booked, clock=_on_clock(los, state, booked.admit_at, census_at))
     return booked, [replace(s, clock=_on_clock(los, state, s.slot_at, census_at))

@@ -16,6 +16,7 @@ that each node stores short arrays (METHODS.md section 1).
 
 from __future__ import annotations
 
+import dataclasses
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from functools import cached_property
@@ -79,11 +80,19 @@ class StayGroup:
     share: Mapping[str, float]
     km: KaplanMeier
     coxian: CoxianSelection
+    # The same stays' Coxian on the unit's discharge clock (operational days), for stays still
+    # to come (app/forecast/newcomer_clock.py); None in models trained before it existed.
+    clock_coxian: CoxianSelection | None = None
 
     @property
     def distribution(self) -> Coxian:
         """The BIC-chosen Coxian (rates per day)."""
         return self.coxian.best.distribution
+
+    @property
+    def clock_distribution(self) -> Coxian | None:
+        """The BIC-chosen Coxian on the discharge clock (rates per operational day)."""
+        return None if self.clock_coxian is None else self.clock_coxian.best.distribution
 
     def to_dict(self) -> dict[str, Any]:
         """JSON-ready dict, exact round trip with :meth:`from_dict`."""
@@ -92,7 +101,9 @@ class StayGroup:
                 "share": dict(self.share), "km": self.km.to_dict(),
                 "coxian": self.coxian.to_dict(),
                 "bic_table": self.coxian.bic_table().to_dict(orient="list"),
-                "phases": self.coxian.best.n_phases}
+                "phases": self.coxian.best.n_phases,
+                **({} if self.clock_coxian is None
+                   else {"clock_coxian": self.clock_coxian.to_dict()})}
 
     @classmethod
     def from_dict(cls, data: Mapping[str, Any]) -> StayGroup:
@@ -102,7 +113,9 @@ class StayGroup:
                    longest_days=float(data["longest_days"]),
                    share={str(k): float(v) for k, v in data["share"].items()},
                    km=KaplanMeier.from_dict(data["km"]),
-                   coxian=CoxianSelection.from_dict(data["coxian"]))
+                   coxian=CoxianSelection.from_dict(data["coxian"]),
+                   clock_coxian=(CoxianSelection.from_dict(data["clock_coxian"])
+                                 if "clock_coxian" in data else None))
 
 
 @dataclass(frozen=True, eq=False)
@@ -140,6 +153,30 @@ class StayGroups:
         if weight == 0:
             raise ValueError(f"admission_type: no stays of type {admission_type!r} in training")
         return total / weight
+
+    @property
+    def on_clock(self) -> bool:
+        """Every group has its Coxian on the discharge clock too."""
+        return all(g.clock_coxian is not None for g in self.groups)
+
+    def with_clock_fits(self, x: npt.ArrayLike, clock_durations: npt.ArrayLike,
+                        observed: npt.ArrayLike, *, max_phases: int = 10, n_starts: int = 2,
+                        rng: int = 0) -> StayGroups:
+        """The groups with each one's Coxian also fitted on its stays' durations measured on
+        the discharge clock (``clock_durations``, operational days; the stays the groups were
+        fitted on, in the same order as ``x``)."""
+        days = round_up_to_hours(clock_durations)
+        ended = np.asarray(observed, dtype=bool)
+        node = self.group_of(x)
+        out = []
+        for g in self.groups:
+            mask = node == g.node
+            if not (mask & ended).any():
+                mask = np.ones(days.size, dtype=bool)  # as the calendar fit: the unit's curve
+            fit = select_coxian(**_hour_bins(days[mask], ended[mask], np.zeros(int(mask.sum()))),
+                                max_phases=max_phases, n_starts=n_starts, rng=rng)
+            out.append(dataclasses.replace(g, clock_coxian=fit))
+        return StayGroups(tree=self.tree, groups=tuple(out))
 
     def to_dict(self) -> dict[str, Any]:
         """JSON-ready dict, exact round trip with :meth:`from_dict`."""

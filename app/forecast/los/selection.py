@@ -30,6 +30,7 @@ from app.forecast.training_data import (
 )
 from app.stats.stay_groups import StayGroups, fit_stay_groups, round_up_to_hours
 from app.stats.survival_tree import (
+    DischargeProfile,
     HazardTreeModel,
     PiecewiseHazardTree,
     piecewise_log_likelihood,
@@ -261,11 +262,23 @@ def _select_groups(design: Design, stays: pd.DataFrame, cutoff_ns: int
 
 
 def _fit_groups(design: Design, stays: pd.DataFrame, cutoff_ns: int, params: Mapping[str, Any],
-                seed: int) -> StayGroups:
+                seed: int, clock: tuple[DischargeProfile, ZoneInfo] | None = None
+                ) -> StayGroups:
+    """The admission groups; with ``clock`` (the hazard tree's profile and the site's zone)
+    each group's Coxian is also fitted on the discharge clock, for stays still to come."""
     table = _stays_at(stays, cutoff_ns)
     x = _admission_x(design, stays)[table.index]
     kinds = stays["admission_type"].to_numpy()[table.index]
-    return fit_stay_groups(x, table.days, table.ended, kinds, design.admission_features,
-                           max_depth=int(params["max_depth"]),
-                           min_samples_leaf=max(30, int(params["leaf_share"] * table.index.size)),
-                           rng=seed)
+    groups = fit_stay_groups(x, table.days, table.ended, kinds, design.admission_features,
+                             max_depth=int(params["max_depth"]),
+                             min_samples_leaf=max(30, int(params["leaf_share"]
+                                                          * table.index.size)),
+                             rng=seed)
+    if clock is None:
+        return groups
+    from app.forecast.newcomer_clock import stay_durations
+
+    start = _ns(stays["admitted_at"])[table.index]
+    end = start + np.round(table.days * NS_PER_DAY).astype(np.int64)
+    return groups.with_clock_fits(x, stay_durations(clock[0], clock[1], start, end),
+                                  table.ended, rng=seed)

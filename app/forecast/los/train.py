@@ -151,7 +151,8 @@ def train_los(state: UnitState, *, test_days: float | None = None,
     design = make_design(full, rows, names)
     hazard = _fit_hazard(design, full, rows, depth=params["max_depth"],
                          min_stays=_min_stays(params, full, rows))
-    groups = _fit_groups(design, state.stays, until_ns, group_params, seed)
+    groups = _fit_groups(design, state.stays, until_ns, group_params, seed,
+                         clock=(hazard.profile, tz))
     metrics["train_seconds"] = timer.perf_counter() - clock_start
     metrics["training_rows"] = int(len(rows.event))
     payload = {
