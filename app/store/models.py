@@ -364,3 +364,67 @@ class TrainingRun(Base):
     finished_at: Mapped[datetime | None]
     model_id: Mapped[str | None] = mapped_column(String(36))
     message: Mapped[str | None] = mapped_column(String(500))
+
+
+# -- feeds: HL7 v2 and FHIR messages received (app/feeds) ---------------------------------------
+
+class FeedMessage(Base):
+    """One message received from a feed: enough to recognise a repeat and to count, no text.
+
+    A repeated (source, control_id) changes nothing. Nothing here identifies a person: the
+    message's text is not kept (only its SHA-256), ``unmapped`` lists codes (points of care,
+    observation codes) the mapping did not name, for ``morrow feeds check``.
+    """
+
+    __tablename__ = "feed_message"
+    __table_args__ = (UniqueConstraint("source", "control_id"),
+                      Index("ix_feed_message_received", "received_at"))
+
+    id: Mapped[int] = mapped_column(primary_key=True)
+    kind: Mapped[str] = mapped_column(String(10))
+    source: Mapped[str] = mapped_column(String(100))
+    control_id: Mapped[str] = mapped_column(String(200))
+    message_type: Mapped[str] = mapped_column(String(20))
+    digest: Mapped[str] = mapped_column(String(64))
+    sent_at: Mapped[datetime | None]
+    received_at: Mapped[datetime]
+    # "applied", "ignored", "dead_letter" or "refused" (a refused message may come again).
+    outcome: Mapped[str] = mapped_column(String(12))
+    reason: Mapped[str | None] = mapped_column(String(500))
+    repeats: Mapped[int] = mapped_column(Integer, default=0, server_default="0")
+    unmapped: Mapped[dict[str, Any] | None]
+    batch_id: Mapped[int | None] = mapped_column(ForeignKey("import_batch.id"))
+
+
+class FeedStay(Base):
+    """Which feed visit a stay belongs to, and the known-at time of its last change."""
+
+    __tablename__ = "feed_stay"
+
+    stay_id: Mapped[str] = mapped_column(ForeignKey("stay.stay_id"), primary_key=True)
+    visit: Mapped[str] = mapped_column(String(64), index=True)
+    known_at: Mapped[datetime]
+    message_id: Mapped[int | None] = mapped_column(ForeignKey("feed_message.id"))
+
+
+class FeedDeadLetter(Base):
+    """A message that could not be applied yet (unmapped code, or its visit not known yet).
+
+    Kept for replay (``morrow feeds replay``) until it applies or ``expires_at`` passes.
+    ``events`` holds what the message says as neutral events (app.feeds.events) and
+    ``text`` the message itself with names, addresses and dates of birth blanked and
+    identifiers replaced by their keyed hash; both are cleared once it has been applied.
+    """
+
+    __tablename__ = "feed_dead_letter"
+
+    id: Mapped[int] = mapped_column(primary_key=True)
+    message_id: Mapped[int] = mapped_column(ForeignKey("feed_message.id"), unique=True)
+    visit: Mapped[str | None] = mapped_column(String(64), index=True)
+    reason: Mapped[str] = mapped_column(String(500))
+    events: Mapped[dict[str, Any] | None]
+    text: Mapped[str | None] = mapped_column(Text)
+    created_at: Mapped[datetime] = mapped_column(default=utcnow)
+    expires_at: Mapped[datetime]
+    attempts: Mapped[int] = mapped_column(Integer, default=0, server_default="0")
+    resolved_at: Mapped[datetime | None]

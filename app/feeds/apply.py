@@ -1,0 +1,706 @@
+"""Apply one translated feed message (app.feeds.events) to the store: stays and scores.
+
+``apply_message`` is the one entry point for every feed (HL7 v2 file or listener, FHIR file or
+endpoint). It only adds and flushes; the caller commits (and acknowledges only after the
+commit). What it does, in order:
+
+1. A (source, control id) already received and not refused is a **duplicate**: nothing
+   changes (its repeat count goes up) and the caller acknowledges it as before.
+2. The message is recorded in ``feed_message`` (no text: type, times, SHA-256, outcome).
+3. Its events are applied inside a savepoint, all or nothing:
+   - a point of care the mapping names (or equal to a unit code) is that unit; one listed as
+     ignored is skipped; any other makes the message a **dead letter** (kept pseudonymised
+     in ``feed_dead_letter`` for ``morrow feeds replay``), as does a message that refers to a
+     stay not known yet (a discharge before its admission arrived): such a dead letter is
+     tried again automatically whenever a later message changes the same visit;
+   - a value outside its bounds (times from 1900 to a day after receipt, app/bounds.py; age
+     0..120; published score ranges, app/score_names.py), a discharge before its admission,
+     a missing admission type: the message is **refused** and nothing of it is stored
+     (its ``feed_message`` row says why; the same control id may be sent again, corrected).
+4. Stays follow the rules of stays.csv (DATA_CONTRACT.md): one stay per visit and unit
+   entered (id from ``events.stay_id_for``), a transfer closes one (outcome from the mapping,
+   else ``transfer``; ``to_unit``) and opens the next (``from_unit``); an exact discharge
+   time is kept as from a stays file (``discharge_source`` "stays"). Every insert, update
+   and delete of a stay writes an audit event naming the message's import batch (one
+   ``import_batch`` per message that changed something: kind ``observations`` for scores
+   only, else the feed kind, so the page's caches see the change). Scores are appended as
+   observations (recorded at the message's known-at time, never before their observed
+   time; a correction gets the next revision; a withdrawal is an entry with ``withdrawn``).
+5. Updates of a stay (A08, discharge corrections) apply only when the message is known at
+   or after the stay's last change (``feed_stay.known_at``): an older message that arrives
+   late changes nothing.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Iterable
+from dataclasses import dataclass, field
+from datetime import UTC, datetime, timedelta
+from typing import Any, Literal
+
+from sqlalchemy import delete, func, select
+from sqlalchemy.orm import Session
+
+from app import bounds, score_names
+from app.feeds.events import (
+    FeedEvent,
+    FeedMessage,
+    ScoreEvent,
+    StayEvent,
+    events_from_json,
+    events_to_json,
+    stay_id_for,
+)
+from app.feeds.mapping import KNOWN_SCORES, FeedMapping
+from app.ingest.importer import OUTCOMES
+from app.store.audit import jsonable
+from app.store.models import (
+    AuditEvent,
+    CensusRow,
+    FeedDeadLetter,
+    FeedStay,
+    ImportBatch,
+    Observation,
+    Stay,
+    Unit,
+)
+from app.store.models import FeedMessage as FeedMessageRow
+
+Status = Literal["applied", "duplicate", "ignored", "dead_letter", "refused"]
+STORED_OUTCOMES = ("applied", "ignored", "dead_letter")
+# How often dead letters of a visit are tried again after one message (a chain of late
+# messages of one visit resolves in a few rounds; the cap only stops a pathological loop).
+MAX_RETRY_ROUNDS = 20
+COVARIATES = ("admission_type", "age", "sex", "specialty", "source")
+
+
+@dataclass(frozen=True)
+class ApplyOutcome:
+    """What became of a message. ``original`` is the first outcome of a duplicate."""
+
+    status: Status
+    reason: str | None = None
+    message_id: int | None = None
+    original: Status | None = None
+
+    @property
+    def ack_code(self) -> str:
+        """HL7 table 0008: AA accepted; AE application error (refused, or kept unapplied)."""
+        status = self.original if self.status == "duplicate" and self.original else self.status
+        return "AA" if status in ("applied", "ignored", "duplicate") else "AE"
+
+
+class _Refused(Exception):
+    def __init__(self, reason: str):
+        super().__init__(reason)
+        self.reason = reason
+
+
+class _DeadLetter(Exception):
+    def __init__(self, reason: str):
+        super().__init__(reason)
+        self.reason = reason
+
+
+def apply_message(session: Session, message: FeedMessage, *, received_at: datetime,
+                  mapping: FeedMapping, actor: str = "feed") -> ApplyOutcome:
+    """Apply ``message``; flush only (the caller commits, then acknowledges)."""
+    received_at = received_at.astimezone(UTC)
+    row = session.scalar(select(FeedMessageRow).where(
+        FeedMessageRow.source == message.source[:100],
+        FeedMessageRow.control_id == message.control_id[:200]))
+    if row is not None and row.outcome in STORED_OUTCOMES:
+        return _repeat(session, row)
+    if row is None:
+        row = FeedMessageRow(kind=message.kind, source=message.source[:100],
+                             control_id=message.control_id[:200])
+        session.add(row)
+    row.message_type = message.message_type[:20]
+    row.digest = message.digest
+    row.sent_at = message.sent_at
+    row.received_at = received_at
+    row.outcome, row.reason, row.unmapped = "refused", None, None
+    session.flush()  # a write before the savepoint: SQLite's transaction is open from here
+
+    work = _Work(session, mapping, actor, now=received_at, message_id=row.id)
+    known_at = message.known_at(received_at)
+    try:
+        if known_at > bounds.latest_event(received_at):
+            raise _Refused(f"sent time {known_at:%Y-%m-%d %H:%M} UTC is more than a day after "
+                           "it was received")
+        with session.begin_nested():
+            status = work.apply_all(message, known_at)
+    except _Refused as refused:
+        row.reason = refused.reason[:500]
+        row.unmapped = work.unmapped_json()
+        session.flush()
+        return ApplyOutcome("refused", refused.reason, row.id)
+    except _DeadLetter as dead:
+        row.outcome, row.reason = "dead_letter", dead.reason[:500]
+        row.unmapped = work.unmapped_json()
+        session.add(FeedDeadLetter(
+            message_id=row.id, visit=_first_visit(message.events), reason=dead.reason[:500],
+            events={"events": events_to_json(message.events), "kind": message.kind},
+            text=message.text, created_at=received_at,
+            expires_at=received_at + timedelta(days=mapping.keep_days)))
+        session.flush()
+        return ApplyOutcome("dead_letter", dead.reason, row.id)
+    row.outcome = status
+    row.reason = work.note
+    row.unmapped = work.unmapped_json()
+    row.batch_id = work.batch.id if work.batch is not None else None
+    session.flush()
+    _retry_visits(session, mapping, actor, work.changed_visits, now=received_at)
+    return ApplyOutcome(status, work.note, row.id)
+
+
+def repeat_of(session: Session, source: str, control_id: str) -> ApplyOutcome | None:
+    """The answer to a (source, control id) already received and not refused, counting the
+    repeat; None when it is new (or was refused, so it may come again corrected)."""
+    row = session.scalar(select(FeedMessageRow).where(
+        FeedMessageRow.source == source[:100], FeedMessageRow.control_id == control_id[:200]))
+    if row is None or row.outcome not in STORED_OUTCOMES:
+        return None
+    return _repeat(session, row)
+
+
+def _repeat(session: Session, row: FeedMessageRow) -> ApplyOutcome:
+    row.repeats += 1
+    session.flush()
+    return ApplyOutcome("duplicate", f"already received on {row.received_at:%Y-%m-%d %H:%M}"
+                        f" UTC ({row.outcome.replace('_', ' ')})", row.id,
+                        original=row.outcome)  # type: ignore[arg-type]
+
+
+def record_refusal(session: Session, *, kind: str, source: str, control_id: str,
+                   message_type: str, digest: str, sent_at: datetime | None,
+                   received_at: datetime, reason: str) -> ApplyOutcome:
+    """Note a message refused before it could be translated (no text, no identifiers)."""
+    row = session.scalar(select(FeedMessageRow).where(
+        FeedMessageRow.source == source[:100], FeedMessageRow.control_id == control_id[:200]))
+    if row is None:
+        row = FeedMessageRow(kind=kind, source=source[:100], control_id=control_id[:200])
+        session.add(row)
+    row.message_type, row.digest, row.sent_at = message_type[:20], digest, sent_at
+    row.received_at, row.outcome, row.reason = received_at.astimezone(UTC), "refused", reason[:500]
+    session.flush()
+    return ApplyOutcome("refused", reason, row.id)
+
+
+# -- dead letters ---------------------------------------------------------------------------
+
+@dataclass(frozen=True)
+class Replayed:
+    dead_letter_id: int
+    message_id: int
+    status: Status
+    reason: str | None
+
+
+def replay_dead_letters(session: Session, mapping: FeedMapping, *, now: datetime,
+                        actor: str = "feed replay", ids: Iterable[int] | None = None
+                        ) -> list[Replayed]:
+    """Try every pending dead letter (or those in ``ids``) again, oldest first; flush only.
+
+    A dead letter past its ``expires_at`` is deleted instead (its ``feed_message`` row stays).
+    """
+    now = now.astimezone(UTC)
+    purge_expired(session, now)
+    query = select(FeedDeadLetter.id).where(FeedDeadLetter.resolved_at.is_(None))
+    if ids is not None:
+        query = query.where(FeedDeadLetter.id.in_(list(ids)))
+    results: list[Replayed] = []  # each one tried, in order, and those its success let in
+    for dead_id in session.scalars(query.order_by(FeedDeadLetter.id)).all():
+        _try_dead_letter(session, mapping, actor, dead_id, now, results)
+    last = {r.dead_letter_id: r for r in results}  # tried twice: its last answer counts
+    return sorted(last.values(), key=lambda r: r.dead_letter_id)
+
+
+def purge_expired(session: Session, now: datetime) -> int:
+    """Delete dead letters past their keeping time; how many."""
+    result = session.execute(delete(FeedDeadLetter).where(
+        FeedDeadLetter.resolved_at.is_(None), FeedDeadLetter.expires_at < now.astimezone(UTC)))
+    return int(getattr(result, "rowcount", 0) or 0)
+
+
+def _try_dead_letter(session: Session, mapping: FeedMapping, actor: str, dead_id: int,
+                     now: datetime, log: list[Replayed] | None = None) -> Replayed | None:
+    dead = session.get(FeedDeadLetter, dead_id)
+    if dead is None or dead.resolved_at is not None or dead.events is None:
+        return None
+    row = session.get(FeedMessageRow, dead.message_id)
+    assert row is not None
+    message = FeedMessage(kind=dead.events.get("kind", row.kind), source=row.source,
+                          control_id=row.control_id, message_type=row.message_type,
+                          digest=row.digest, events=events_from_json(dead.events["events"]),
+                          sent_at=row.sent_at)
+    work = _Work(session, mapping, actor, now=now, message_id=row.id)
+    dead.attempts += 1
+    try:
+        with session.begin_nested():
+            status = work.apply_all(message, message.known_at(row.received_at))
+    except (_Refused, _DeadLetter) as exc:
+        dead.reason = exc.reason[:500]
+        row.unmapped = work.unmapped_json()
+        session.flush()
+        failed = Replayed(dead.id, row.id, "dead_letter", exc.reason)
+        if log is not None:
+            log.append(failed)
+        return failed
+    dead.resolved_at = now
+    dead.events, dead.text = None, None  # applied: nothing of it needs keeping any more
+    row.outcome = status
+    row.reason = f"applied from the dead letters on {now:%Y-%m-%d %H:%M} UTC"
+    row.unmapped = work.unmapped_json()
+    row.batch_id = work.batch.id if work.batch is not None else None
+    session.flush()
+    done = Replayed(dead.id, row.id, status, row.reason)
+    if log is not None:
+        log.append(done)
+    _retry_visits(session, mapping, actor, work.changed_visits, now=now, log=log)
+    return done
+
+
+def _retry_visits(session: Session, mapping: FeedMapping, actor: str, visits: set[str], *,
+                  now: datetime, log: list[Replayed] | None = None) -> None:
+    """Try again the dead letters of visits a message has just changed (late arrivals)."""
+    pending = set(visits)
+    for _ in range(MAX_RETRY_ROUNDS):
+        if not pending:
+            return
+        ids = session.scalars(select(FeedDeadLetter.id).where(
+            FeedDeadLetter.resolved_at.is_(None), FeedDeadLetter.visit.in_(sorted(pending)))
+            .order_by(FeedDeadLetter.id)).all()
+        pending = set()
+        for dead_id in ids:
+            dead = session.get(FeedDeadLetter, dead_id)
+            visit = dead.visit if dead is not None else None
+            result = _try_dead_letter(session, mapping, actor, dead_id, now, log)
+            if result is not None and result.status != "dead_letter" and visit:
+                pending.add(visit)
+
+
+def _first_visit(events: tuple[FeedEvent, ...]) -> str | None:
+    return next((e.visit for e in events), None)
+
+
+# -- applying events ------------------------------------------------------------------------
+
+@dataclass
+class _Work:
+    session: Session
+    mapping: FeedMapping
+    actor: str
+    now: datetime
+    message_id: int
+    batch: ImportBatch | None = None
+    note: str | None = None
+    changed_visits: set[str] = field(default_factory=set)
+    unmapped: dict[str, set[str]] = field(default_factory=dict)
+    _units: set[str] | None = None
+    _score_names: set[str] | None = None
+    # The stays of each visit read so far (forgotten when one is added or deleted).
+    _visits: dict[str, list[Stay]] = field(default_factory=dict)
+    _message: FeedMessage | None = None
+    known_at: datetime = datetime.min.replace(tzinfo=UTC)
+
+    # -- the message ---------------------------------------------------------------------
+
+    def apply_all(self, message: FeedMessage, known_at: datetime) -> Status:
+        self._message, self.known_at = message, known_at
+        if not message.events:
+            raise _Refused("the message holds no event Morrow uses")
+        results = []
+        stays = [e for e in message.events if isinstance(e, StayEvent)]
+        scores = [e for e in message.events if isinstance(e, ScoreEvent)]
+        for event in stays:
+            results.append(self._stay_event(event))
+        if scores:
+            results.append(self._scores(scores))
+        if all(r == "ignored" for r in results):
+            self.note = "only points of care the mapping ignores"
+            return "ignored"
+        return "applied"
+
+    def unmapped_json(self) -> dict[str, Any] | None:
+        return {k: sorted(v) for k, v in self.unmapped.items()} if self.unmapped else None
+
+    def _unmapped(self, kind: str, code: str) -> None:
+        self.unmapped.setdefault(kind, set()).add(code[:64])
+
+    # -- lookups -------------------------------------------------------------------------
+
+    def known_units(self) -> set[str]:
+        if self._units is None:
+            self._units = set(self.session.scalars(select(Unit.code)))
+        return self._units
+
+    def unit(self, location: str | None) -> str | None:
+        """The unit of a point of care; None if none given or ignored; dead letter if unmapped."""
+        if not location or self.mapping.is_ignored(location):
+            return None
+        unit = self.mapping.unit_for(location, self.known_units())
+        if unit is None:
+            self._unmapped("locations", location)
+            raise _DeadLetter(f"point of care {location!r} is not mapped to a Morrow unit")
+        if unit not in self.known_units():
+            self._unmapped("locations", location)
+            raise _DeadLetter(f"point of care {location!r} maps to unit {unit!r}, which Morrow "
+                              "does not have (import it in units.csv)")
+        return unit
+
+    def instant(self, value: datetime | None, what: str) -> datetime:
+        if value is None:
+            raise _Refused(f"no {what} in the message")
+        try:
+            return bounds.check_instant(value.astimezone(UTC), what,
+                                        latest=bounds.latest_event(self.now))
+        except bounds.OutOfBounds as exc:
+            raise _Refused(str(exc)) from None
+
+    def visit_stays(self, visit: str) -> list[Stay]:
+        cached = self._visits.get(visit)
+        if cached is not None:
+            return list(cached)
+        stays = list(self.session.scalars(
+            select(Stay).join(FeedStay, FeedStay.stay_id == Stay.stay_id)
+            .where(FeedStay.visit == visit).order_by(Stay.admitted_at)))
+        self._visits[visit] = stays
+        return list(stays)
+
+    def covariates(self, event: StayEvent, *, required: bool) -> dict[str, Any]:
+        values: dict[str, Any] = {}
+        if event.admission_class:
+            kind = self.mapping.admission_type_for(event.admission_class)
+            if kind is None:
+                self._unmapped("admission_types", event.admission_class)
+                raise _DeadLetter(f"admission type {event.admission_class!r} is not mapped to "
+                                  "emergency or elective")
+            values["admission_type"] = kind
+        elif required:
+            raise _Refused("no admission type (HL7 PV1-4, FHIR Encounter.class)")
+        if event.age is not None:
+            if not 0 <= event.age <= 120:
+                raise _Refused(f"age at admission {event.age} is outside 0 to 120")
+            values["age"] = event.age
+        if event.sex is not None:
+            if event.sex not in ("f", "m", "x"):
+                raise _Refused(f"sex {event.sex!r} is not f, m or x")
+            values["sex"] = event.sex
+        specialty = self.mapping.specialty_for(event.specialty)
+        if specialty:
+            values["specialty"] = specialty
+        source = self.mapping.source_for(event.admit_source)
+        if source:
+            values["source"] = source
+        return values
+
+    def outcome(self, event: StayEvent, default: str | None) -> str | None:
+        code = event.disposition
+        mapped = self.mapping.outcome_for(code)
+        if mapped is None and code and code.strip().lower() in OUTCOMES:
+            mapped = code.strip().lower()
+        return mapped or default
+
+    # -- writing -------------------------------------------------------------------------
+
+    def batch_id(self) -> int:
+        if self.batch is None:
+            message = self._message
+            assert message is not None
+            only_scores = all(isinstance(e, ScoreEvent) for e in message.events)
+            self.batch = ImportBatch(
+                kind="observations" if only_scores else message.kind,
+                filename=f"{message.kind} {message.message_type} {message.source} "
+                         f"{message.control_id}"[:255],
+                sha256=message.digest, rows=len(message.events), actor=self.actor[:100])
+            self.session.add(self.batch)
+            self.session.flush()
+        return self.batch.id
+
+    def audit(self, action: str, stay_id: str, before: dict[str, Any] | None,
+              after: dict[str, Any] | None) -> None:
+        self.session.add(AuditEvent(actor=self.actor[:100], action=action, entity="stay",
+                                    entity_id=stay_id, before=jsonable(before),
+                                    after=jsonable(after), batch_id=self.batch_id()))
+
+    def insert_stay(self, event: StayEvent, unit: str, admitted_at: datetime,
+                    values: dict[str, Any], *, from_unit: str | None) -> Stay:
+        stay_id = stay_id_for(event.visit, admitted_at)
+        # Ids are made from the visit: only a stay of the same visit can hold this one.
+        clash = next((s for s in self.visit_stays(event.visit) if s.stay_id == stay_id), None)
+        if clash is not None:
+            raise _Refused(f"this visit already has a stay from {admitted_at:%Y-%m-%d %H:%M} "
+                           f"UTC in unit {clash.unit}")
+        fields = {"unit": unit, "admitted_at": admitted_at, "discharged_at": None,
+                  "admission_type": values["admission_type"], "outcome": None,
+                  "age": values.get("age"), "sex": values.get("sex"),
+                  "specialty": values.get("specialty"), "source": values.get("source"),
+                  "patient": event.patient, "from_unit": from_unit, "to_unit": None,
+                  "booking_id": values.get("booking_id")}
+        stay = Stay(stay_id=stay_id, batch_id=self.batch_id(), discharge_source=None, **fields)
+        self.session.add(stay)
+        self.session.flush()
+        self.session.add(FeedStay(stay_id=stay_id, visit=event.visit, known_at=self.known_at,
+                                  message_id=self.message_id))
+        self._visits.pop(event.visit, None)
+        self.audit("insert", stay_id, None, fields)
+        self.changed_visits.add(event.visit)
+        return stay
+
+    def change_stay(self, stay: Stay, visit: str, values: dict[str, Any], *,
+                    only_if_newer: bool) -> bool:
+        link = self.session.get(FeedStay, stay.stay_id)
+        if only_if_newer and link is not None and self.known_at < link.known_at:
+            return False  # an older message arriving late: what is stored is newer
+        changed = {k: v for k, v in values.items() if getattr(stay, k) != v}
+        if not changed:
+            return False
+        if "discharged_at" in changed and changed["discharged_at"] is not None \
+                and changed["discharged_at"] < stay.admitted_at:
+            raise _Refused(f"discharge at {changed['discharged_at']:%Y-%m-%d %H:%M} UTC is "
+                           f"before the admission at {stay.admitted_at:%Y-%m-%d %H:%M} UTC")
+        before = {k: getattr(stay, k) for k in changed}
+        for k, v in changed.items():
+            setattr(stay, k, v)
+        if link is not None:
+            link.known_at = max(link.known_at, self.known_at)
+            link.message_id = self.message_id
+        self.audit("update", stay.stay_id, before, changed)
+        self.changed_visits.add(visit)
+        self.session.flush()
+        return True
+
+    def delete_stay(self, stay: Stay, visit: str) -> None:
+        before = {k: getattr(stay, k) for k in ("unit", "admitted_at", "discharged_at",
+                                                 *COVARIATES, "patient", "from_unit", "to_unit")}
+        scores = self.session.scalar(select(func.count()).select_from(Observation)
+                                     .where(Observation.stay_id == stay.stay_id)) or 0
+        before["observations"] = int(scores)
+        self.session.execute(delete(Observation).where(Observation.stay_id == stay.stay_id))
+        self.session.execute(delete(CensusRow).where(CensusRow.stay_id == stay.stay_id))
+        self.session.execute(delete(FeedStay).where(FeedStay.stay_id == stay.stay_id))
+        self.session.delete(stay)
+        self._visits.pop(visit, None)
+        self.audit("delete", stay.stay_id, before, None)
+        self.changed_visits.add(visit)
+        self.session.flush()
+
+    # -- stay events ---------------------------------------------------------------------
+
+    def _stay_event(self, event: StayEvent) -> str:
+        handler = {
+            "admit": self._admit, "transfer": self._transfer, "discharge": self._discharge,
+            "update": self._update, "cancel_admit": self._cancel_admit,
+            "cancel_transfer": self._cancel_transfer,
+            "cancel_discharge": self._cancel_discharge,
+        }[event.action]
+        return handler(event)
+
+    def _admit(self, event: StayEvent) -> str:
+        if self.mapping.is_ignored(event.location):
+            return "ignored"
+        unit = self.unit(event.location)
+        if unit is None:
+            raise _Refused("no point of care (HL7 PV1-3, FHIR Encounter.location) for the "
+                           "admission")
+        at = self.instant(event.at, "admission time")
+        values = self.covariates(event, required=True)
+        if event.booking:  # the admission's booking (PV1-5); a transfer keeps none
+            values["booking_id"] = event.booking.strip()[:64]
+        stays = self.visit_stays(event.visit)
+        same = [s for s in stays if s.unit == unit and s.admitted_at == at]
+        if same:  # the same admission again (or known already from a later message)
+            self.change_stay(same[0], event.visit, values, only_if_newer=True)
+            return "applied"
+        open_stays = [s for s in stays if s.discharged_at is None]
+        if open_stays:
+            raise _Refused(f"this visit is already in unit {open_stays[-1].unit} since "
+                           f"{open_stays[-1].admitted_at:%Y-%m-%d %H:%M} UTC; a move between "
+                           "units is a transfer")
+        self.insert_stay(event, unit, at, values, from_unit=None)
+        return "applied"
+
+    def _transfer(self, event: StayEvent) -> str:
+        at = self.instant(event.at, "transfer time")
+        dest = self.unit(event.location)
+        prior = self.unit(event.prior_location)
+        if dest is None and prior is None and event.prior_location:
+            return "ignored"  # from one point of care Morrow does not serve to another
+        stays = self.visit_stays(event.visit)
+        leaving = None
+        if prior is not None or not event.prior_location:
+            before = [s for s in stays if (prior is None or s.unit == prior)
+                      and s.admitted_at < at and s.discharged_at in (None, at)]
+            leaving = before[-1] if before else None
+            if leaving is None and prior is not None:
+                raise _DeadLetter(f"no stay of this visit in unit {prior} before "
+                                  f"{at:%Y-%m-%d %H:%M} UTC is known yet")
+        if leaving is not None and leaving.unit == dest:
+            return "applied"  # a move within the unit (another bed): no new stay
+        if leaving is not None:
+            self.change_stay(leaving, event.visit, {
+                "discharged_at": at, "discharge_source": "stays",
+                "outcome": self.outcome(event, "transfer"),
+                "to_unit": dest or (event.location or None)}, only_if_newer=False)
+        if dest is not None and not any(s.unit == dest and s.admitted_at == at for s in stays):
+            values = self.covariates(event, required=leaving is None)
+            if leaving is not None:
+                values = {**{k: getattr(leaving, k) for k in COVARIATES}, **values}
+            self.insert_stay(event, dest, at, values,
+                             from_unit=leaving.unit if leaving is not None else prior)
+        return "applied"
+
+    def _discharge(self, event: StayEvent) -> str:
+        if self.mapping.is_ignored(event.location):
+            return "ignored"
+        unit = self.unit(event.location)
+        at = self.instant(event.at, "discharge time")
+        stays = [s for s in self.visit_stays(event.visit)
+                 if (unit is None or s.unit == unit) and s.admitted_at <= at]
+        if not stays:
+            raise _DeadLetter(f"no stay of this visit in unit {unit or '(any)'} before "
+                              f"{at:%Y-%m-%d %H:%M} UTC is known yet")
+        stay = stays[-1]
+        values = {"discharged_at": at, "discharge_source": "stays",
+                  "outcome": self.outcome(event, None), "to_unit": None}
+        # A stay still open takes the discharge; one already closed takes it as a correction
+        # only from a message known later than its last change.
+        self.change_stay(stay, event.visit, values,
+                         only_if_newer=stay.discharged_at is not None)
+        return "applied"
+
+    def _update(self, event: StayEvent) -> str:
+        at = self.instant(event.at, "event time")
+        stays = self.visit_stays(event.visit)
+        if not stays:
+            if self.mapping.is_ignored(event.location):
+                return "ignored"
+            raise _DeadLetter("no stay of this visit is known yet")
+        current = [s for s in stays if s.admitted_at <= at
+                   and (s.discharged_at is None or s.discharged_at > at)]
+        stay = current[-1] if current else stays[-1]
+        values = self.covariates(event, required=False)
+        self.change_stay(stay, event.visit, values, only_if_newer=True)
+        return "applied"
+
+    def _cancel_admit(self, event: StayEvent) -> str:
+        if self.mapping.is_ignored(event.location):
+            return "ignored"
+        self.unit(event.location)  # an unmapped point of care waits for the mapping
+        stays = self.visit_stays(event.visit)
+        if not stays:
+            raise _DeadLetter("no admission of this visit to cancel is known yet")
+        for stay in reversed(stays):  # the admission cancelled: the visit never was
+            self.delete_stay(stay, event.visit)
+        return "applied"
+
+    def _cancel_transfer(self, event: StayEvent) -> str:
+        # PV1-3 is where the patient stays (the unit before the cancelled transfer), PV1-6
+        # the location of the transfer cancelled (HL7 v2.5.1 3.3.12, from memory).
+        back = self.unit(event.location)
+        gone_to = self.unit(event.prior_location)
+        stays = self.visit_stays(event.visit)
+        if not stays:
+            if back is None and gone_to is None:
+                return "ignored"
+            raise _DeadLetter("no transfer of this visit to cancel is known yet")
+        last = stays[-1]
+        if last.discharged_at is None and last.unit != back and (
+                gone_to is None or last.unit == gone_to):
+            came_from = last.admitted_at
+            self.delete_stay(last, event.visit)
+            earlier = [s for s in stays[:-1] if s.discharged_at == came_from]
+            if earlier:
+                self.change_stay(earlier[-1], event.visit, {
+                    "discharged_at": None, "discharge_source": None, "outcome": None,
+                    "to_unit": None}, only_if_newer=False)
+            return "applied"
+        if back is not None and last.unit == back and last.discharged_at is not None \
+                and last.to_unit is not None:
+            self.change_stay(last, event.visit, {
+                "discharged_at": None, "discharge_source": None, "outcome": None,
+                "to_unit": None}, only_if_newer=False)
+            return "applied"
+        raise _DeadLetter("no transfer of this visit to cancel is known yet")
+
+    def _cancel_discharge(self, event: StayEvent) -> str:
+        if self.mapping.is_ignored(event.location):
+            return "ignored"
+        unit = self.unit(event.location)
+        stays = [s for s in self.visit_stays(event.visit)
+                 if (unit is None or s.unit == unit) and s.discharged_at is not None
+                 and s.to_unit is None]
+        if not stays:
+            raise _DeadLetter("no discharge of this visit to cancel is known yet")
+        stay = max(stays, key=lambda s: s.discharged_at or s.admitted_at)
+        self.change_stay(stay, event.visit, {"discharged_at": None, "discharge_source": None,
+                                             "outcome": None}, only_if_newer=False)
+        return "applied"
+
+    # -- scores --------------------------------------------------------------------------
+
+    def score_names(self) -> set[str]:
+        if self._score_names is None:
+            self._score_names = set(KNOWN_SCORES) | set(self.session.scalars(
+                select(Observation.name).distinct()))
+        return self._score_names
+
+    def _score_name(self, event: ScoreEvent) -> str | None:
+        name = self.mapping.score_for(event.code, event.system)
+        if name is None and event.code.strip().lower() not in KNOWN_SCORES:
+            name = self.mapping.score_for(event.code, event.system, self.score_names())
+        return name
+
+    def _scores(self, events: list[ScoreEvent]) -> str:
+        mapped = []
+        for event in events:
+            name = self._score_name(event)
+            if name is None:
+                self._unmapped("codes", f"{event.system}|{event.code}" if event.system
+                               else event.code)
+            else:
+                mapped.append((name, event))
+        if not mapped:
+            raise _DeadLetter("no observation code of the message is mapped to a score: "
+                              + ", ".join(sorted(self.unmapped.get("codes", ()))))
+        applied = False
+        for name, event in mapped:
+            if self.mapping.is_ignored(event.location):
+                continue
+            observed = self.instant(event.observed_at, "observation time")
+            why = score_names.problem(name, event.value)
+            if why is not None:
+                raise _Refused(f"{why} (got {event.value:g})")
+            stays = [s for s in self.visit_stays(event.visit) if s.admitted_at <= observed
+                     and (s.discharged_at is None or s.discharged_at >= observed)]
+            if not stays:
+                raise _DeadLetter(f"no stay of this visit at {observed:%Y-%m-%d %H:%M} UTC is "
+                                  "known yet")
+            self._add_score(stays[-1], name, event, observed)
+            applied = True
+        return "applied" if applied else "ignored"
+
+    def _add_score(self, stay: Stay, name: str, event: ScoreEvent, observed: datetime) -> None:
+        recorded = max(self.known_at, observed)
+        latest = self.session.execute(
+            select(Observation.value, Observation.withdrawn).where(
+                Observation.stay_id == stay.stay_id, Observation.observed_at == observed,
+                Observation.name == name)
+            .order_by(Observation.recorded_at.desc(), Observation.revision.desc()).limit(1)
+        ).first()
+        if latest is not None and latest.value == event.value \
+                and bool(latest.withdrawn) == event.withdrawn:
+            return  # the same value again (a replayed history)
+        if latest is None and event.withdrawn:
+            return  # nothing to withdraw
+        revision = self.session.scalar(
+            select(func.max(Observation.revision)).where(
+                Observation.stay_id == stay.stay_id, Observation.observed_at == observed,
+                Observation.name == name, Observation.recorded_at == recorded))
+        self.session.add(Observation(
+            stay_id=stay.stay_id, observed_at=observed, name=name, value=event.value,
+            recorded_at=recorded, revision=0 if revision is None else revision + 1,
+            withdrawn=event.withdrawn, batch_id=self.batch_id()))
+        self.changed_visits.add(event.visit)
+        self.session.flush()
