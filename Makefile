@@ -5,6 +5,7 @@ BIN    := $(VENV)/bin
 DB     ?= sqlite:///morrow.db
 HOST   ?= 127.0.0.1
 PORT   ?= 8000
+HL7_PORT ?= 2575
 
 .PHONY: demo test bench stress lint venv install install-test serve demo-data clean
 
@@ -31,6 +32,9 @@ demo: install
 	$(BIN)/morrow --db $(DB) demo users
 	@echo "Open http://$(HOST):$(PORT)/ and sign in with one of the accounts above (Ctrl-C stops the server)."
 	@echo "The page replays the demo's last census morning (MORROW_NOW); unset it for the real clock."
+	@echo "HL7 v2 messages (MLLP) are taken on $(HOST):$(HL7_PORT) while it runs (README: live feeds)."
+	$(BIN)/morrow --db $(DB) listen --host $(HOST) --port $(HL7_PORT) & listener=$$!; \
+	trap 'kill $$listener 2>/dev/null' EXIT INT TERM; \
 	MORROW_NOW=$$($(BIN)/morrow --db $(DB) demo now) $(BIN)/morrow --db $(DB) serve --host $(HOST) --port $(PORT)
 
 # .ci/postgres starts a throwaway PostgreSQL server for the tests that run on both databases

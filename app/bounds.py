@@ -14,7 +14,7 @@ field, the value given and the range allowed, in words a user understands.
 from __future__ import annotations
 
 import math
-from datetime import UTC, date, datetime, timedelta
+from datetime import UTC, date, datetime, timedelta, tzinfo
 
 # -- dates and instants ---------------------------------------------------------------------
 
@@ -35,6 +35,11 @@ AS_OF_AHEAD = timedelta(days=366)
 # day Python and the database can hold.
 FILTER_AHEAD_DAYS = 3660
 
+# A score entered on the page or through the API describes a moment already past: never after
+# now (the site's clock), and at most this long before it (a later entry for an older moment
+# is a correction to a file; common practice, no source).
+SCORE_LOOKBACK = timedelta(days=7)
+
 # -- forecasts and backtests ----------------------------------------------------------------
 
 MIN_FORECAST_DAYS, MAX_FORECAST_DAYS = 1, 28
@@ -52,6 +57,13 @@ MAX_PLAN_YEARS = 10
 MIN_PLAN_REPLICATIONS, MAX_PLAN_REPLICATIONS = 2, 100
 MAX_BEDS = 1000
 MAX_SEED = 2**32 - 1
+
+
+# -- alert levels ----------------------------------------------------------------------------
+
+# A unit's warning and alarm levels (app/alert_levels.py), as a chance from 1% to 99%: 0%
+# would colour every night, 100% none; the warning must lie below the alarm.
+MIN_ALERT_LEVEL, MAX_ALERT_LEVEL = 0.01, 0.99
 
 
 # -- text ------------------------------------------------------------------------------------
@@ -122,6 +134,29 @@ def check_booking_date(value: date, today: date, field: str = "planned date") ->
     return value
 
 
+def check_observed_at(value: datetime, now: datetime, tz: tzinfo,
+                      field: str = "observation time") -> datetime:
+    """When a score entered now was observed: from ``SCORE_LOOKBACK`` before ``now`` to ``now``.
+
+    The message shows the site's wall-clock time, as the form does."""
+    earliest = now - SCORE_LOOKBACK
+    if value > now:
+        raise OutOfBounds(f"{field} {_wall(value, tz)} is in the future; "
+                          f"give a time up to now ({_wall(now, tz)})")
+    if value < earliest:
+        raise OutOfBounds(f"{field} {_wall(value, tz)} is more than "
+                          f"{SCORE_LOOKBACK.days} days ago; import older scores as a file")
+    return value
+
+
+def _wall(value: datetime, tz: tzinfo) -> str:
+    """The site's wall-clock time, or the UTC text for an instant the zone cannot show."""
+    try:
+        return f"{value.astimezone(tz):%a %d %b %Y %H:%M}"
+    except OverflowError:  # years 1 and 9999 fall off the calendar in some zones
+        return _shown(value)
+
+
 def check_date_range(start: date, end: date, what: str = "--from/--to") -> None:
     """A backtest's days: ``start`` not after ``end``, at most ``MAX_BACKTEST_DAYS`` long."""
     if end < start:
@@ -180,3 +215,39 @@ def check_plan_days(days: int, field: str = "years") -> int:
         raise OutOfBounds(f"{field}: {days / 365:g} years ({days} days) is outside the allowed "
                           f"range, a week to {MAX_PLAN_YEARS} years")
     return days
+
+
+def check_alert_levels(warning: float, alarm: float) -> tuple[float, float]:
+    """A unit's warning and alarm levels (chances, 0.1 = 10%): each from 1% to 99%, the
+    warning below the alarm."""
+    for field, value in (("warning level", warning), ("alarm level", alarm)):
+        if not (math.isfinite(value) and MIN_ALERT_LEVEL <= value <= MAX_ALERT_LEVEL):
+            shown = f"{value * 100:g}%" if math.isfinite(value) else repr(value)
+            raise OutOfBounds(f"{field}: {shown} is outside the allowed range, "
+                              f"{MIN_ALERT_LEVEL:.0%} to {MAX_ALERT_LEVEL:.0%}")
+    if not warning < alarm:
+        raise OutOfBounds(f"warning level: {warning * 100:g}% must be below the alarm level "
+                          f"({alarm * 100:g}%)")
+    return warning, alarm
+
+
+# -- the wall screen (home page, app/web/routes_home.py) ---------------------------------------
+
+# How often the wall screen reloads itself, in seconds: every five minutes by default; at
+# most hourly, at least every 5 s (the browser test's short interval).
+WALL_REFRESH_S = 300
+MIN_WALL_REFRESH_S = 5
+MAX_WALL_REFRESH_S = 3600
+
+
+def check_wall_refresh(seconds: int, field: str = "refresh") -> int:
+    return check_whole(seconds, field, MIN_WALL_REFRESH_S, MAX_WALL_REFRESH_S)
+
+
+# -- feeds (app/feeds, app/cli/feeds.py) -----------------------------------------------------
+
+# One HL7 v2 message over MLLP: ADT and ORU messages are a few kilobytes; a block past this is
+# refused (AR) rather than buffered without end.
+MAX_FEED_MESSAGE_BYTES = 1024 * 1024
+# `morrow feeds check --last N`: how many of the latest messages it may read.
+MAX_FEED_CHECK_MESSAGES = 1_000_000

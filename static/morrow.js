@@ -3,13 +3,21 @@
 // No inline script anywhere: the Content-Security-Policy forbids it.
 (function () {
   "use strict";
+  // Offline and clinical: no plotting-library logo, no sending or editing a chart in anyone's
+  // cloud, no link out; only zoom, pan, reset and the PNG download stay in the toolbar.
+  // (Plotly.js 4 shows "Share chart..." unless showSendToCloud is false; the other two
+  // switches are the older releases' names for the same buttons.)
+  var PLOT_CONFIG = {displaylogo: false, responsive: true, showLink: false,
+    showSendToCloud: false, showEditInChartStudio: false, plotlyServerURL: "", showTips: false,
+    modeBarButtonsToRemove: ["sendChartToCloud", "sendDataToCloud", "editInChartStudio",
+      "lasso2d", "select2d", "toggleSpikelines", "hoverClosestCartesian",
+      "hoverCompareCartesian"]};
   function drawCharts() {
     document.querySelectorAll('script[type="application/json"][id$="-data"]').forEach(function (node) {
       var target = document.getElementById(node.id.slice(0, -5));
       if (!target || typeof Plotly === "undefined") { return; }
       var figure = JSON.parse(node.textContent);
-      Plotly.newPlot(target, figure.data, figure.layout, {displaylogo: false, responsive: true,
-        modeBarButtonsToRemove: ["lasso2d", "select2d"]});
+      Plotly.newPlot(target, figure.data, figure.layout, PLOT_CONFIG);
     });
   }
   function cellValue(row, index, kind) {

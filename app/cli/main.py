@@ -14,7 +14,7 @@ from typing import Any
 from sqlalchemy.orm import Session
 
 from app import bounds
-from app.cli import plan, users
+from app.cli import feeds, fhir_replay, plan, units, users
 from app.cli.args import unit_code as unit_code_arg
 from app.config import current_time, get_settings
 from app.ingest import KINDS, ImportRefused
@@ -40,6 +40,10 @@ def cmd_db_upgrade(args: argparse.Namespace) -> int:
 
 
 def cmd_import(args: argparse.Namespace) -> int:
+    if args.kind == "fhir":
+        return fhir_replay.cmd_import_fhir(args)
+    if args.kind == "hl7":
+        return feeds.cmd_import_hl7(args)
     path = Path(args.file)
     if not path.is_file():
         raise BadInput(f"{path}: no such file")
@@ -145,16 +149,22 @@ def _forecast_days(days: int) -> None:
 
 
 def render_forecast_table(result: dict[str, Any]) -> str:
+    from app.nights import night_of
+
+    tz = get_settings().tz
     lines = [f"{result['unit']} as of {result['as_of']} (model trained until "
              f"{result['model']['trained_until']})",
-             f"{'census at':<27} {'beds':>4} {'median':>6} {'80% band':>9} {'95% band':>9} "
-             f"{'P(over)':>8}"]
+             f"{'night':<16} {'census at':<27} {'beds':>4} {'median':>6} {'80% band':>9} "
+             f"{'95% band':>9} {'more than beds':>14}"]
     for day in result["days"]:
         q = day["quantiles"]
         over = "" if day["p_over_capacity"] is None else f"{day['p_over_capacity']:.0%}"
-        lines.append(f"{day['census_at']:<27} {day['beds'] if day['beds'] is not None else '-':>4} "
+        night = night_of(datetime.fromisoformat(day["census_at"]), tz).dated_name
+        lines.append(f"{night:<16} {day['census_at']:<27} "
+                     f"{day['beds'] if day['beds'] is not None else '-':>4} "
                      f"{q['0.5']:>6} {q['0.1']:>4}-{q['0.9']:<4} {q['0.025']:>4}-{q['0.975']:<4} "
-                     f"{over:>8}")
+                     f"{over:>14}")
+    lines.append("more than beds: the chance of more patients than staffed beds that night")
     if "p_over_capacity_any_day" in result:
         lines.append(f"chance of more patients than staffed beds on any of these days: "
                      f"{result['p_over_capacity_any_day']:.0%}")
@@ -233,6 +243,17 @@ def cmd_demo_train(args: argparse.Namespace) -> int:
             print(f"{code}: training on the demo history (about a minute) ...", flush=True)
             model_id, payload = train_model(session, code, now, get_settings().tz)
         print(format_metrics(payload["metrics"]))
+    from app.demo.backtest import DEMO_MORNINGS, store_demo_backtest
+
+    for code in codes:
+        print(f"{code}: backtest of the last {DEMO_MORNINGS} mornings for the model page ...",
+              flush=True)
+        try:
+            stored = store_demo_backtest(args.db, code, now, get_settings().tz)
+        except Exception as exc:  # the demo still works without it
+            print(f"{code}: no backtest stored ({type(exc).__name__}: {exc})")
+            continue
+        print(f"{code}: {'stored' if stored else 'a backtest is already there'}")
     return EXIT_OK
 
 
@@ -311,7 +332,9 @@ def build_parser() -> argparse.ArgumentParser:
     dbsub.add_parser("upgrade", help="apply pending migrations").set_defaults(func=cmd_db_upgrade)
 
     p = sub.add_parser("import", help="import one CSV file (all rows or none)")
-    p.add_argument("kind", choices=KINDS)
+    p.add_argument("kind", choices=(*KINDS, "hl7", "fhir"))
+    p.add_argument("--mapping", default=None,
+                   help="hl7, fhir: the feed mapping file (default: $MORROW_FEED_MAPPING)")
     p.add_argument("file")
     p.set_defaults(func=cmd_import)
 
@@ -362,6 +385,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.set_defaults(func=cmd_serve)
     users.register(sub)
     plan.register(sub)
+    units.register(sub)
+    fhir_replay.register(fhir_replay.feeds_subparsers(sub))
+    feeds.register(sub, fhir_replay.feeds_subparsers(sub))
     return parser
 
 

@@ -99,7 +99,7 @@ def _hourly_stream(name: str, state: UnitState, first_day: date, day_means: list
     return ArrivalStream(name, tuple(at), tuple(mean), tuple(day), size, stay)
 
 
-def _on_clock(los: LosModel, state: UnitState, offsets: list[float] | tuple[float, ...],
+def clock_lags(los: LosModel, state: UnitState, offsets: list[float] | tuple[float, ...],
               census_at: np.ndarray) -> np.ndarray:
     """(arrivals, instants) time on the unit's discharge clock from each arrival (days after
     as_of) to each census instant (``app.forecast.newcomer_clock``)."""
@@ -109,15 +109,16 @@ def _on_clock(los: LosModel, state: UnitState, offsets: list[float] | tuple[floa
     return elapsed(los.hazard.profile, state.tz, start, census)
 
 
-def _stay_of(los: LosModel, group: Any) -> Any:
+def newcomer_stay_of(los: LosModel, group: Any) -> Any:
     """A group's stay for newcomers: on the discharge clock when the model has those fits."""
     return group.clock_distribution if los.groups.on_clock else group.distribution
 
 
 def _newcomer_stay(los: LosModel, admission_type: str) -> StayMixture:
-    parts = [(g.share.get(admission_type, 0.0), _stay_of(los, g)) for g in los.groups.groups]
-    parts = [(w, d) for w, d in parts if w > 0] or [(1.0, _stay_of(los, g))
-                                                    for g in los.groups.groups]
+    groups = los.groups.groups
+    parts = [(g.share.get(admission_type, 0.0), newcomer_stay_of(los, g)) for g in groups]
+    parts = [(w, d) for w, d in parts if w > 0] or [(1.0, newcomer_stay_of(los, g))
+                                                    for g in groups]
     return StayMixture(tuple(w for w, _ in parts), tuple(d for _, d in parts))
 
 
@@ -146,7 +147,7 @@ def _booked(state: UnitState, los: LosModel, elective: dict[str, Any], last_day:
         offset = max(_days_after(when, state.as_of), 1 / 24)
         p_go.append(float(p_go_by_lead[lead]))
         admit_at.append(offset)
-        stays.append(_stay_of(los, los.groups.get(int(group))))
+        stays.append(newcomer_stay_of(los, los.groups.get(int(group))))
     return BookedAdmissions(tuple(p_go), tuple(admit_at), tuple(stays))
 
 
@@ -158,8 +159,8 @@ def _with_clock(los: LosModel, state: UnitState, census_at: np.ndarray,
     if not los.groups.on_clock:
         return booked, streams
     if booked.stays:
-        booked = replace(booked, clock=_on_clock(los, state, booked.admit_at, census_at))
-    return booked, [replace(s, clock=_on_clock(los, state, s.slot_at, census_at))
+        booked = replace(booked, clock=clock_lags(los, state, booked.admit_at, census_at))
+    return booked, [replace(s, clock=clock_lags(los, state, s.slot_at, census_at))
                     for s in streams]
 
 

@@ -31,7 +31,8 @@ from app.store.retry import run_transaction
 
 HEARTBEAT_EVERY = timedelta(seconds=5)
 STALE_AFTER = timedelta(minutes=2)
-ACTIVE = ("queued", "running")
+# "cancelling": the page asked a running fit to stop; its process ends at its next beat.
+ACTIVE = ("queued", "running", "cancelling")
 STAGE_QUEUED = "waiting for its process to start"
 STAGE_FITTING = "reading the history and fitting the models"
 
@@ -167,12 +168,51 @@ def _update(url: str, run_id: int, **values: object) -> None:
         update(TrainingRun).where(TrainingRun.id == run_id).values(**values)))
 
 
+def cancel_training(url: str, run_id: int, actor: str, *, form: str | None = None) -> bool:
+    """Ask a queued or running run to stop, audited; whether it was active. A queued run
+    ends here; a running one is ended by its own process at its next heartbeat."""
+    def work(session: Session) -> bool:
+        run = session.get(TrainingRun, run_id, with_for_update=True)
+        if run is None or run.status not in ACTIVE:
+            return False
+        if run.status == "queued":
+            run.status, run.active_unit, run.finished_at = "cancelled", None, _now()
+        else:
+            run.status = "cancelling"
+        run.message = f"cancelled by {actor[:80]}"
+        record_audit(session, actor, "update", "training_run", str(run_id), None,
+                     {"status": run.status}, form=form)
+        return True
+
+    return run_transaction(url, work)
+
+
+def _beat(url: str, run_id: int) -> str:
+    """Write the heartbeat; the run's status (the page may have asked it to stop)."""
+    def work(session: Session) -> str:
+        run = session.get(TrainingRun, run_id, with_for_update=True)
+        if run is None:
+            return "failed"
+        if run.status == "cancelling":
+            run.status, run.active_unit, run.finished_at = "cancelled", None, _now()
+            run.stage = ""
+        else:
+            run.heartbeat_at = _now()
+        return run.status
+
+    return run_transaction(url, work)
+
+
 def _heartbeat(url: str, run_id: int, stop: threading.Event) -> None:
     while not stop.wait(HEARTBEAT_EVERY.total_seconds()):
         try:
-            _update(url, run_id, heartbeat_at=_now())
+            status = _beat(url, run_id)
         except Exception:  # a missed beat is harmless; the next one may get through
             continue
+        if status == "cancelled":
+            # The fit cannot be interrupted from another thread: the process ends here,
+            # and its unfinished transaction (nothing is stored before the end) with it.
+            os._exit(3)
 
 
 def _claim(url: str, run_id: int) -> TrainingRun | None:

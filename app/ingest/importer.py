@@ -20,6 +20,7 @@ from zoneinfo import ZoneInfo
 from sqlalchemy import insert, select, update
 from sqlalchemy.orm import Session
 
+from app import score_names
 from app.ingest import parse as p
 from app.ingest.parse import Column, ImportRefused, Sheet
 from app.store.models import (
@@ -39,13 +40,8 @@ KINDS = ("units", "stays", "census", "observations", "bookings")
 
 # Published ranges of known scores (DATA_CONTRACT.md): SOFA, Vincent et al. 1996; NEWS2,
 # Royal College of Physicians 2017; APACHE II, Knaus et al. 1985.
-SCORE_RANGES: dict[str, tuple[float, float]] = {
-    "sofa": (0, 24),
-    "news2": (0, 20),
-    "apache_ii": (0, 71),
-    "apache2": (0, 71),
-}
-FLAG_NAMES = ("fit_for_discharge",)
+SCORE_RANGES: dict[str, tuple[int, int]] = score_names.RANGES
+FLAG_NAMES = score_names.FLAGS
 
 ADMISSION_TYPES = ("emergency", "elective")
 OUTCOMES = ("home", "ward", "transfer", "died")
@@ -235,13 +231,10 @@ def _check_rows(kind: str, sheet: Sheet) -> None:
                 sheet.problem(line, "recorded_at", row["recorded_at"].isoformat(),
                               "recorded_at is before observed_at")
             name, value = row["name"], row["value"]
-            if name in SCORE_RANGES:
-                low, high = SCORE_RANGES[name]
-                if not low <= value <= high:
-                    sheet.problem(line, "value", value,
-                                  f"{name} must lie from {low:g} to {high:g} (published range)")
-            elif name in FLAG_NAMES and value not in (0.0, 1.0):
-                sheet.problem(line, "value", value, f"{name} is a flag: 0 or 1")
+            if name in SCORE_RANGES or name in FLAG_NAMES:
+                why = score_names.problem(name, value)  # published ranges, whole numbers
+                if why is not None:
+                    sheet.problem(line, "value", value, why)
         elif kind == "bookings":
             once(row["booking_id"], line, "booking_id", row["booking_id"],
                  "booking_id appears twice in this file")
@@ -535,13 +528,17 @@ def _observations_check(session: Session, sheet: Sheet) -> Rows:
         # The latest revision of each key: a value equal to it is already stored; any other
         # value is a correction entered now, so it takes the next revision (a clock read to
         # the second, or a fixed replay clock, gives a correction the same recorded_at).
-        stored: dict[tuple[Any, ...], tuple[int, float]] = {}
+        # A withdrawal (withdrawn=True) holds the value it withdrew: after it, that value
+        # is a new entry too.
+        stored: dict[tuple[Any, ...], tuple[int, float | None]] = {}
         for o in session.execute(select(
                 Observation.stay_id, Observation.observed_at, Observation.name,
-                Observation.recorded_at, Observation.revision, Observation.value)
+                Observation.recorded_at, Observation.revision, Observation.value,
+                Observation.withdrawn)
                 .where(Observation.stay_id.in_(part))
                 .order_by(Observation.revision)):
-            stored[(o.stay_id, o.observed_at, o.name, o.recorded_at)] = (o.revision, o.value)
+            stored[(o.stay_id, o.observed_at, o.name, o.recorded_at)] = (
+                o.revision, None if o.withdrawn else o.value)
         for stay_id in part:
             for line, row in keys_by_stay[stay_id]:
                 key = (stay_id, row["observed_at"], row["name"], row["recorded_at"])

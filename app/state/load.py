@@ -33,7 +33,8 @@ def _utc_column(values: list[datetime | None]) -> pd.Series:
 
 def _observations(session: Session, unit: str, as_of: datetime, *,
                   current_only: bool) -> pd.DataFrame:
-    query = (select(*[getattr(Observation, c) for c in OBSERVATION_COLUMNS])
+    query = (select(*[getattr(Observation, c) for c in OBSERVATION_COLUMNS],
+                    Observation.withdrawn)
              .join(Stay, Observation.stay_id == Stay.stay_id)
              .where(Stay.unit == unit, Stay.admitted_at <= as_of,
                     Observation.observed_at <= as_of, Observation.recorded_at <= as_of))
@@ -44,11 +45,29 @@ def _observations(session: Session, unit: str, as_of: datetime, *,
     rows = session.execute(query.order_by(
         Observation.stay_id, Observation.name, Observation.observed_at,
         Observation.recorded_at, Observation.revision)).all()
-    observations = pd.DataFrame(rows, columns=OBSERVATION_COLUMNS)
+    observations = _without_withdrawn(pd.DataFrame(rows, columns=[*OBSERVATION_COLUMNS,
+                                                                  "withdrawn"]))
     observations["observed_at"] = _utc_column(list(observations["observed_at"]))
     observations["recorded_at"] = _utc_column(list(observations["recorded_at"]))
     observations["value"] = observations["value"].astype(float)
     return observations
+
+
+def _without_withdrawn(rows: pd.DataFrame) -> pd.DataFrame:
+    """The rows without withdrawals: where the latest entry known (the last row of its
+    (stay, name, observed_at), rows in the order of entry) withdraws the value, that
+    measurement has no value at all; an entry after a withdrawal gives it a value again.
+
+    Applied at load, so a state holds no withdrawn value, also for instants before the
+    withdrawal that ``UnitState.known_at`` replays (a withdrawn value was a mistake; a model
+    should not learn from it either).
+    """
+    withdrawn = rows["withdrawn"].astype(bool)
+    if withdrawn.any():
+        key = [rows["stay_id"], rows["name"], rows["observed_at"]]
+        latest_withdrawn = withdrawn.groupby(key, sort=False).transform("last").astype(bool)
+        rows = rows.loc[~(withdrawn | latest_withdrawn)]
+    return rows.drop(columns="withdrawn").reset_index(drop=True)
 
 
 def with_current_observations(session: Session, state: UnitState) -> UnitState:

@@ -145,3 +145,8 @@ def iter_events(session: Session, where: AuditFilter, *, chunk: int = 1000) -> I
         for event, kind, name in rows:
             yield AuditRow(event, kind, name)
         last_id = rows[-1][0].id
+
+
+def entity_kinds(session: Session) -> list[str]:
+    """The record kinds the trail holds (what the page's filter offers), sorted."""
+    return sorted(k for k in session.scalars(select(AuditEvent.entity).distinct()) if k)

@@ -81,6 +81,15 @@ def post_observation(request: Request, unit: str, body: ScoreIn, session: Sessio
         raise HTTPException(status_code=404, detail=f"unit {unit} is not known")
     now = current_time().replace(microsecond=0)
     observed = body.observed_at or now.isoformat()
+    if body.observed_at is not None:
+        # The same bound as the score form's (app/bounds.py): never after now.
+        try:
+            bounds.check_observed_at(parse_timestamp(body.observed_at, get_settings().tz), now,
+                                     get_settings().tz, "observed_at")
+        except ValueError as exc:  # OutOfBounds, or not a timestamp at all
+            why = str(exc) if isinstance(exc, bounds.OutOfBounds) else "not an ISO 8601 timestamp"
+            raise HTTPException(status_code=422, detail=[
+                {"column": "observed_at", "value": body.observed_at, "why": why}]) from None
     data = _one_row_csv(["stay_id", "observed_at", "name", "value", "recorded_at"],
                         [body.stay_id, observed, body.name, repr(body.value), now.isoformat()])
     if not repo.stay_in_unit(session, unit, body.stay_id, now):

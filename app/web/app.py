@@ -3,36 +3,35 @@
 from __future__ import annotations
 
 import sys
-from pathlib import Path
 
-import plotly
-from fastapi import FastAPI, Request
-from fastapi.responses import FileResponse, HTMLResponse, JSONResponse
+from fastapi import FastAPI
+from fastapi.responses import JSONResponse
 from fastapi.staticfiles import StaticFiles
 
 from app import __version__
 from app.config import PROJECT_ROOT, get_settings
-from app.store import db, repo
+from app.store import db
 from app.web import (
     api,
     busy,
-    forecasts,
+    errors,
     limits,
     model_page,
     pages,
     planning_page,
+    routes_alerts,
     routes_audit,
     routes_auth,
+    routes_backtest,
+    routes_booking,
+    routes_feeds,
+    routes_home,
+    routes_scores,
     routes_training,
     security,
+    vendor,
 )
-from app.web.deps import SessionDep
 from app.web.security import ReadActor
-from app.web.templating import templates
-
-# Plotly's own JavaScript, served from the installed package: the page works offline.
-PLOTLY_JS = Path(plotly.__file__).resolve().parent / "package_data" / "plotly.min.js"
-
 
 # How long a thread may hold the interpreter lock before another waiting thread gets it
 # (Python's default is 5 ms). A request waits for the lock again after every database call;
@@ -58,20 +57,23 @@ def create_app(database_url: str | None = None) -> FastAPI:
     app.state.database_url = url
     app.mount("/static", StaticFiles(directory=str(PROJECT_ROOT / "static")), name="static")
     security.install(app)
+    errors.install(app)  # after security: the site's own 403, 404, 405, 422 pages
     busy.install(app)
     limits.install(app)  # added last, so it runs first: the limit covers the whole request
     app.include_router(routes_auth.router)
+    app.include_router(routes_home.router)  # "/" and "/wall": the hospital at a glance
+    app.include_router(vendor.router)  # Plotly's JavaScript, compressed
     app.include_router(routes_audit.router)
+    app.include_router(routes_alerts.router)
+    app.include_router(routes_booking.router)
     app.include_router(pages.router)
+    app.include_router(routes_scores.router)
     app.include_router(api.router)
     app.include_router(model_page.router)
     app.include_router(planning_page.router)
     app.include_router(routes_training.router)
-
-    @app.get("/vendor/plotly.min.js", include_in_schema=False)
-    def plotly_js() -> FileResponse:
-        return FileResponse(PLOTLY_JS, media_type="text/javascript",
-                            headers={"Cache-Control": "public, max-age=86400"})
+    app.include_router(routes_backtest.router)
+    app.include_router(routes_feeds.router)  # POST /api/feeds/fhir
 
     @app.get("/openapi.json", include_in_schema=False)
     def openapi_schema(actor: ReadActor) -> JSONResponse:
@@ -82,16 +84,5 @@ def create_app(database_url: str | None = None) -> FastAPI:
     def health() -> dict[str, object]:
         """Liveness and the database's migration revision."""
         return {"status": "ok", "version": __version__, "revision": db.current_revision(url)}
-
-    @app.get("/", response_class=HTMLResponse)
-    def home(request: Request, session: SessionDep, actor: ReadActor) -> HTMLResponse:
-        """Units with their staffed beds and occupancy now (from the page's forecast cache)."""
-        rows = []
-        for unit in repo.list_units(session):
-            state = forecasts.current(session, unit.code).state
-            rows.append({"code": unit.code, "census_time": unit.census_time,
-                         "beds": state.beds_on(state.as_of.tz_convert(state.tz).date()),
-                         "occupied": state.occupancy_at(state.as_of)})
-        return templates.TemplateResponse(request, "home.html", {"units": rows})
 
     return app

@@ -17,7 +17,7 @@ from __future__ import annotations
 from collections.abc import Iterator
 from typing import Annotated
 
-from fastapi import Depends, Request
+from fastapi import Depends, Path, Request
 from sqlalchemy.orm import Session
 
 from app.store import db
@@ -39,3 +39,5 @@ def get_session(request: Request,
 
 
 SessionDep = Annotated[Session, Depends(get_session, scope="function")]
+# A row id in an address: what both databases' integer keys hold (larger ones are a 422).
+RowId = Annotated[int, Path(ge=1, le=2**63 - 1)]

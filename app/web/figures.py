@@ -9,6 +9,7 @@ from __future__ import annotations
 
 from functools import lru_cache
 from typing import Any
+from zoneinfo import ZoneInfo
 
 import numpy as np
 import plotly.graph_objects as go
@@ -32,38 +33,16 @@ def _layout(fig: go.Figure, **extra: Any) -> go.Figure:
     return fig
 
 
-def fan_chart(forecast: dict[str, Any], occupied_now: int, as_of_label: str) -> dict[str, Any]:
-    """Occupancy bands (50/80/95%) at each census instant, the median and the staffed beds.
+def fan_chart(forecast: dict[str, Any], occupied_now: int, as_of_label: str = "",
+              tz: ZoneInfo | None = None, *, wall: bool = False) -> dict[str, Any]:
+    """Occupancy bands (50/80/95%) at each census instant, the median and the staffed beds,
+    on a real time axis with nights named by their evening (app/web/fan_chart.py).
+    ``as_of_label`` is kept for callers; the chart names "now" from the forecast itself."""
+    from app.config import get_settings
+    from app.web.fan_chart import fan_figure
 
-    Built as plain figure JSON rather than through ``go.Figure``: the page rebuilds it after
-    every score, and plotly's validation took about half of that page's time."""
-    days = forecast["days"]
-    x = [as_of_label] + [census_label(d["census_at"]) for d in days]
-    traces: list[dict[str, Any]] = []
-    for low, high, label, alpha in BANDS:
-        lows = [occupied_now] + [d["quantiles"][low] for d in days]
-        highs = [occupied_now] + [d["quantiles"][high] for d in days]
-        traces.append({"type": "scatter", "x": x, "y": highs, "mode": "lines",
-                       "line": {"width": 0}, "showlegend": False, "hoverinfo": "skip"})
-        traces.append({"type": "scatter", "x": x, "y": lows, "mode": "lines",
-                       "line": {"width": 0}, "fill": "tonexty",
-                       "fillcolor": f"rgba({BLUE}, {alpha})", "name": f"{label} band",
-                       "hovertemplate": f"{label}: %{{y}}–<extra></extra>"})
-    traces.append({"type": "scatter", "x": x,
-                   "y": [occupied_now] + [d["quantiles"]["0.5"] for d in days],
-                   "mode": "lines+markers", "name": "median",
-                   "line": {"color": f"rgb({BLUE})", "width": 3}})
-    beds = [d["beds"] for d in days]
-    if all(b is not None for b in beds):
-        traces.append({"type": "scatter", "x": x, "y": [beds[0]] + beds, "mode": "lines",
-                       "name": "staffed beds",
-                       "line": {"color": "black", "dash": "dash", "width": 2, "shape": "hv"}})
-    top = max([d["quantiles"]["0.975"] for d in days] + [b or 0 for b in beds] + [occupied_now])
-    return {"data": traces, "layout": {
-        **LAYOUT, "template": _template(),
-        "yaxis": {"title": {"text": "patients at census"}, "rangemode": "tozero",
-                  "range": [0, top + 2], "dtick": 2 if top < 30 else 5},
-        "xaxis": {"type": "category"}, "height": 360}}
+    return fan_figure(forecast, occupied_now, tz or get_settings().tz, wall=wall,
+                      template=_template())
 
 
 @lru_cache(maxsize=1)
@@ -79,36 +58,6 @@ def census_label(census_at: str) -> str:
     from datetime import datetime
 
     return datetime.fromisoformat(census_at).strftime("%a %d %b %H:%M")
-
-
-def risk_bars(forecast: dict[str, Any]) -> dict[str, Any]:
-    days = forecast["days"]
-    fig = go.Figure(go.Bar(x=[d["date"] for d in days],
-                           y=[(d["p_over_capacity"] or 0) * 100 for d in days],
-                           marker_color=VERMILLION, name="chance over staffed beds",
-                           hovertemplate="%{y:.0f}%<extra></extra>"))
-    _layout(fig, yaxis={"title": "% chance over staffed beds", "range": [0, 100]},
-            xaxis={"type": "category"}, height=220)
-    return fig.to_plotly_json()
-
-
-def booking_strip(strip: list[dict[str, Any]]) -> dict[str, Any]:
-    """Chance a bed is free on each candidate night, and the added risk of running out."""
-    labels = [f"{s['weekday']} {s['date'][8:]}" for s in strip]
-    fig = go.Figure()
-    fig.add_trace(go.Bar(x=labels, y=[s["p_bed_free"] * 100 for s in strip],
-                         name="chance a bed is free that night", marker_color=GREEN,
-                         hovertemplate="%{y:.0f}%<extra></extra>"))
-    fig.add_trace(go.Scatter(x=labels,
-                             y=[s["added_risk"] * 100 for s in strip], mode="lines+markers",
-                             name="added chance of running out (worst night of the stay)",
-                             line={"color": VERMILLION, "width": 2}, yaxis="y2",
-                             hovertemplate="+%{y:.1f} points<extra></extra>"))
-    _layout(fig, yaxis={"title": "% bed free", "range": [0, 100]},
-            yaxis2={"title": "added risk (points)", "overlaying": "y", "side": "right",
-                    "rangemode": "tozero"},
-            xaxis={"type": "category"}, height=300)
-    return fig.to_plotly_json()
 
 
 def survival_fit(group: dict[str, Any], km_time: list[float], km_surv: list[float],
@@ -229,14 +178,20 @@ def scenario_points(report: dict[str, Any]) -> dict[str, Any]:
                 for s in scenarios]
         minus = [(s["metrics"][metric]["mean"] - s["metrics"][metric]["ci_low"]) * 100
                  for s in scenarios]
-        colours = ["black" if s["name"] == report["scenarios"][0]["name"] else f"rgb({BLUE})"
-                   for s in scenarios]
-        fig.add_trace(go.Scatter(
-            x=means, y=names, mode="markers", showlegend=False,
-            marker={"size": 13, "color": colours, "symbol": "diamond"},
-            error_x={"type": "data", "array": plus, "arrayminus": minus, "thickness": 2,
-                     "width": 6},
-            hovertemplate=f"%{{y}}: {hover}<extra></extra>"), row=1, col=col)
+        # One trace per colour: error bars take a single colour, and with the markers'
+        # list of colours the browser drew them black ("Invalid color specifier").
+        current = report["scenarios"][0]["name"]
+        for colour, is_current in (("black", True), (f"rgb({BLUE})", False)):
+            rows = [i for i, n in enumerate(names) if (n == current) == is_current]
+            if not rows:
+                continue
+            fig.add_trace(go.Scatter(
+                x=[means[i] for i in rows], y=[names[i] for i in rows], mode="markers",
+                showlegend=False, marker={"size": 13, "color": colour, "symbol": "diamond"},
+                error_x={"type": "data", "array": [plus[i] for i in rows],
+                         "arrayminus": [minus[i] for i in rows], "thickness": 2, "width": 6,
+                         "color": colour},
+                hovertemplate=f"%{{y}}: {hover}<extra></extra>"), row=1, col=col)
         base = report["scenarios"][0]["metrics"][metric]["mean"] * 100
         fig.add_vline(x=base, line={"color": "black", "dash": "dot", "width": 1}, row=1,
                       col=col)
@@ -247,7 +202,8 @@ def scenario_points(report: dict[str, Any]) -> dict[str, Any]:
                        font={"color": VERMILLION, "size": 12})
     _layout(fig, height=140 + 55 * len(names), hovermode="closest",
             margin={"l": 20, "r": 20, "t": 50, "b": 40})
-    fig.update_xaxes(ticksuffix="%", rangemode="tozero", row=1, col=1)
-    fig.update_xaxes(ticksuffix="%", row=1, col=2)
+    fig.update_xaxes(ticksuffix="%", rangemode="tozero", row=1, col=1,
+                     title_text="% of arriving patients who find no bed")
+    fig.update_xaxes(ticksuffix="%", row=1, col=2, title_text="% of beds occupied")
     fig.update_yaxes(automargin=True)
     return fig.to_plotly_json()

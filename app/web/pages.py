@@ -5,26 +5,24 @@ from __future__ import annotations
 import csv
 import io
 import json
-from datetime import date, datetime, timedelta
+from datetime import datetime, timedelta
 from typing import Annotated, Any
 
-from fastapi import APIRouter, File, Form, HTTPException, Query, Request, UploadFile
-from fastapi.responses import HTMLResponse, RedirectResponse, Response
+from fastapi import APIRouter, File, Form, HTTPException, Request, UploadFile
+from fastapi.responses import HTMLResponse, Response
 from sqlalchemy import select
 
-from app import bounds
 from app.config import current_time, get_settings
-from app.forecast.booking_check import Candidate, booking_check
-from app.forecast.service import model_for
-from app.ingest import KINDS, ImportRefused, Problem, import_file
+from app.feeds.activity import feed_activity
+from app.ingest import KINDS, ImportRefused, Problem
 from app.ingest.importer import SCORE_RANGES
 from app.ingest.retried import IMPORT_TIME_LIMIT_S, ImportTimedOut, import_once
 from app.store import repo
 from app.store.models import ImportBatch
-from app.web import figures
+from app.web import figures, routes_scores, unit_alerts
 from app.web.deps import SessionDep
 from app.web.forecasts import Shown, current
-from app.web.security import BookingsActor, DataActor, ReadActor, ScoresActor
+from app.web.security import DataActor, ReadActor
 from app.web.templating import templates
 
 router = APIRouter()
@@ -112,6 +110,11 @@ def unit_page(request: Request, unit: str, session: SessionDep, actor: ReadActor
         context["tonight"] = shown.forecast["days"][0]
         context["fan_json"] = shown.view("fan", lambda: json.dumps(figures.fan_chart(
             shown.forecast, occupied, f"now {now_local:%H:%M}")))
+    # Score entry: the answer at the entered row, score names with ranges, the time box.
+    context.update(routes_scores.page_context(
+        request, list(state.observations["name"].unique()), current_time()))
+    # Alert levels, the plain sentences, the learnt ceiling and the leaving list.
+    context.update(unit_alerts.context(session, unit, shown, context["patients"], beds_now))
     return templates.TemplateResponse(request, "unit.html", context)
 
 
@@ -133,109 +136,7 @@ def _one_row_csv(header: list[str], values: list[Any]) -> bytes:
     return out.getvalue().encode("utf-8")
 
 
-@router.post("/units/{unit}/scores")
-def enter_score(unit: str, session: SessionDep, actor: ScoresActor,
-                stay_id: Annotated[str, Form()], name: Annotated[str, Form()],
-                value: Annotated[str, Form()]) -> Response:
-    """A score or flag from the nurse in charge, through the same checks as an import."""
-    _unit_or_404(session, unit)
-    now = current_time().replace(microsecond=0)
-    if not repo.stay_in_unit(session, unit, stay_id, now):
-        return _back(unit, f"{stay_id} is not in {unit} now; nothing was recorded", stay_id)
-    data = _one_row_csv(["stay_id", "observed_at", "name", "value", "recorded_at"],
-                        [stay_id, now.isoformat(), name.strip().lower(), value.strip(),
-                         now.isoformat()])
-    try:
-        import_file(session, "observations", data, "score entry form", tz=get_settings().tz,
-                    actor=actor.username)
-    except ImportRefused as refused:
-        why = "; ".join(f"{p.column}: {p.why}" for p in refused.problems)
-        return _back(unit, f"not recorded: {why}", stay_id)
-    return _back(unit, f"{name} {value} recorded for {stay_id}", stay_id)
-
-
-def _back(unit: str, message: str, stay_id: str | None = None) -> RedirectResponse:
-    from urllib.parse import urlencode
-
-    query = urlencode({"message": message, **({"entered": stay_id} if stay_id else {})})
-    anchor = f"#stay-{stay_id}" if stay_id else ""
-    return RedirectResponse(f"/units/{unit}?{query}{anchor}", status_code=303)
-
-
-@router.get("/units/{unit}/booking", response_class=HTMLResponse)
-def booking_page(request: Request, unit: str, session: SessionDep, actor: ReadActor,
-                 planned_date: date | None = None,
-                 age: Annotated[int | None, Query(ge=0, le=120)] = None,
-                 specialty: str | None = None, procedure: str | None = None,
-                 message: str | None = None) -> Response:
-    """Booking check for the surgical scheduler, with the next 14 days to choose from."""
-    _unit_or_404(session, unit)
-    shown = current(session, unit)
-    context: dict[str, Any] = {"unit": unit, "message": message, "problem": shown.problem,
-                               "result": None, "specialties": _specialties(shown),
-                               "form": {"planned_date": planned_date, "age": age,
-                                        "specialty": specialty, "procedure": procedure},
-                               "today": shown.state.as_of.tz_convert(shown.state.tz).date()}
-    if planned_date is not None and shown.forecast is not None:
-        try:
-            bounds.check_booking_date(planned_date, context["today"])
-        except bounds.OutOfBounds as exc:
-            context["message"] = str(exc)
-            return templates.TemplateResponse(request, "booking.html", context,
-                                              status_code=422)
-        else:
-            record = model_for(session, unit, shown.state.as_of.to_pydatetime())
-            result = booking_check(shown.state, record, Candidate(
-                planned_date, age, (specialty or "").strip().lower() or None,
-                (procedure or "").strip().lower() or None))
-            context["result"] = result
-            context["strip_json"] = json.dumps(figures.booking_strip(result["strip"]))
-    return templates.TemplateResponse(request, "booking.html", context)
-
-
-def _specialties(shown: Shown) -> list[str]:
-    values = shown.state.bookings["specialty"].dropna().unique().tolist()
-    return sorted(str(v) for v in values)
-
-
-@router.post("/units/{unit}/booking")
-def book(unit: str, session: SessionDep, actor: BookingsActor,
-         planned_date: Annotated[date, Form()], age: Annotated[str, Form()] = "",
-         specialty: Annotated[str, Form()] = "",
-         procedure: Annotated[str, Form()] = "") -> Response:
-    """Store a booking so later forecasts include it."""
-    import secrets
-
-    _unit_or_404(session, unit)
-    booking_id = f"B-{secrets.token_hex(4)}"
-    now = current_time().replace(microsecond=0)
-    try:
-        bounds.check_booking_date(planned_date, now.astimezone(get_settings().tz).date())
-    except bounds.OutOfBounds as exc:
-        raise HTTPException(status_code=422, detail=f"not booked: {exc}") from None
-    data = _one_row_csv(["booking_id", "unit", "booked_at", "planned_date", "age", "specialty",
-                         "procedure"],
-                        [booking_id, unit, now.isoformat(), planned_date.isoformat(), age.strip(),
-                         specialty.strip(), procedure.strip()])
-    try:
-        import_file(session, "bookings", data, "booking form", tz=get_settings().tz,
-                    actor=actor.username)
-    except ImportRefused as refused:
-        why = "; ".join(f"{p.column}: {p.why}" for p in refused.problems)
-        return _booking_redirect(unit, {"message": f"not booked: {why}"})
-    return _booking_redirect(unit, {
-        "message": f"booked {booking_id} for {planned_date.isoformat()}",
-        "planned_date": planned_date.isoformat(), "age": age.strip(),
-        "specialty": specialty.strip(), "procedure": procedure.strip()})
-
-
-def _booking_redirect(unit: str, fields: dict[str, str]) -> RedirectResponse:
-    """Back to the booking form; each value is encoded, so '&', '=' or '#' typed into a field
-    stays inside that field instead of adding or overriding other parameters."""
-    from urllib.parse import quote, urlencode
-
-    query = urlencode({name: value for name, value in fields.items() if value})
-    return RedirectResponse(f"/units/{quote(unit, safe='')}/booking?{query}", status_code=303)
+# The booking check and booking: app/web/routes_booking.py.
 
 
 @router.get("/data", response_class=HTMLResponse)
@@ -252,6 +153,7 @@ def _render_data(request: Request, session: SessionDep, problems: Any, result: A
     return templates.TemplateResponse(request, "data.html", {
         "kinds": KINDS, "batches": batches, "units": units, "problems": problems,
         "result": result, "kind": kind,
+        "feeds": feed_activity(session, current_time(), get_settings().tz),
         "max_mb": get_settings().max_upload_bytes // (1024 * 1024)}, status_code=status)
 
 

@@ -188,6 +188,19 @@ def _report(url: str, demand: UnitDemand, settings: PlanSettings,
     return report
 
 
+def _this_week(session: SessionDep, unit: str) -> dict[str, Any] | None:
+    """The unit page's figure for this week (its cached forecast), for the page to set the
+    long-run figure beside it; None when there is no forecast now."""
+    from app.web import forecasts
+
+    shown = forecasts.current(session, unit)
+    if shown.forecast is None or "p_over_capacity_any_day" not in shown.forecast:
+        return None
+    days = shown.forecast["days"]
+    return {"any_night": shown.forecast["p_over_capacity_any_day"], "beds": days[0]["beds"],
+            "tonight": days[0].get("p_over_capacity")}
+
+
 @router.get("/units/{unit}/planning", response_class=HTMLResponse)
 def planning_page(request: Request, unit: str, session: SessionDep, actor: ReadActor
                   ) -> Response:
@@ -202,9 +215,9 @@ def planning_page(request: Request, unit: str, session: SessionDep, actor: ReadA
     try:
         demand = _demand(session, url, unit)
     except NoModel:
-        context["problem"] = (f"No model has been trained for {unit} yet: run "
-                              f"morrow train --unit {unit}. Planning uses the trained model's "
-                              "admissions and stays.")
+        context["problem"] = (f"No model has been trained for {unit} yet: a bed manager can "
+                              "start one under Training runs on the model page. Planning uses "
+                              "the trained model's admissions and stays.")
         return templates.TemplateResponse(request, "planning.html", context)
     query = dict(request.query_params)
     slots = _slots(demand, query)
@@ -230,4 +243,5 @@ def planning_page(request: Request, unit: str, session: SessionDep, actor: ReadA
         context["problem"] = str(exc)
         return templates.TemplateResponse(request, "planning.html", context, status_code=422)
     context["target_label"] = f"{settings.target * 100:g}%"
+    context["this_week"] = _this_week(session, unit)
     return templates.TemplateResponse(request, "planning.html", context)

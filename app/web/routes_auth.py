@@ -6,7 +6,7 @@ import secrets
 from datetime import UTC, datetime, timedelta
 from typing import Annotated
 
-from fastapi import APIRouter, Form, Path, Request
+from fastapi import APIRouter, Form, Request
 from fastapi.responses import HTMLResponse, JSONResponse, RedirectResponse, Response
 from pydantic import BaseModel, Field
 
@@ -16,7 +16,7 @@ from app.store import audit
 from app.store import users as accounts
 from app.store.models import UserAccount
 from app.store.users import ROLE_LABELS, ROLES, AccountError
-from app.web.deps import SessionDep
+from app.web.deps import RowId, SessionDep
 from app.web.security import (
     PRESESSION_COOKIE,
     SESSION_COOKIE,
@@ -31,8 +31,8 @@ from app.web.security import (
 from app.web.templating import templates
 
 router = APIRouter()
-# SQLite integers are 64-bit: a larger id is refused here rather than failing in the driver.
-TokenId = Annotated[int, Path(ge=1, le=2**63 - 1)]
+# SQLite integers are 64-bit: a larger id is refused (RowId) rather than failing in the driver.
+TokenId = RowId
 
 # -- signing in and out ---------------------------------------------------------------------
 

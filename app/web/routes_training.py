@@ -19,6 +19,7 @@ from app.config import current_time
 from app.forecast.training_jobs import (
     RunView,
     TrainingBusy,
+    cancel_training,
     describe,
     last_duration,
     recent_runs,
@@ -26,7 +27,7 @@ from app.forecast.training_jobs import (
     start_process,
 )
 from app.store import repo
-from app.web.deps import SessionDep
+from app.web.deps import RowId, SessionDep
 from app.web.security import DataActor, ReadActor, form_origin
 from app.web.templating import templates
 
@@ -70,6 +71,18 @@ def start_training(request: Request, unit: str, session: SessionDep,
         return _back(unit, f"not started: {busy}")
     start_process(url, run_id)
     return _back(unit, f"training run {run_id} started")
+
+
+@router.post("/units/{unit}/training/{run_id}/cancel")
+def stop_training(request: Request, unit: str, run_id: RowId, session: SessionDep,
+                  actor: DataActor) -> Response:
+    """Ask a queued or running training run to stop."""
+    if repo.get_unit(session, unit) is None:
+        raise HTTPException(status_code=404, detail=f"unit {unit} is not known")
+    stopped = cancel_training(request.app.state.database_url, run_id, actor.username,
+                              form=form_origin(request))
+    return _back(unit, f"training run {run_id} is stopping" if stopped
+                 else f"training run {run_id} was not running")
 
 
 def _back(unit: str, message: str) -> RedirectResponse:

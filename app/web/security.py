@@ -295,7 +295,13 @@ async def _no_body() -> Message:
     return {"type": "http.disconnect"}
 
 
+# Set by app.web.errors.install: renders these answers as the site's own error page.
+message_page_renderer: Callable[[str, str], str] | None = None
+
+
 def _message_page(title: str, text: str) -> str:
+    if message_page_renderer is not None:
+        return message_page_renderer(title, text)
     return (f"<!doctype html><html lang=\"en\"><head><meta charset=\"utf-8\"><title>"
             f"{escape(title)} - Morrow</title><link rel=\"stylesheet\" href=\"/static/morrow.css\">"
             f"</head><body><main><h1>{escape(title)}</h1><p>{escape(text)}</p>"

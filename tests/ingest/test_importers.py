@@ -333,6 +333,8 @@ def test_observations_append_only_with_corrections(unit_db: str) -> None:
         ("S-1,2026-03-02T07:00,news2,21,", "value", "from 0 to 20"),
         ("S-1,2026-03-02T07:00,apache_ii,72,", "value", "from 0 to 71"),
         ("S-1,2026-03-02T07:00,fit_for_discharge,2,", "value", "flag"),
+        # SOFA is a sum of six organ scores of 0-4 points each (Vincent et al. 1996): whole.
+        ("S-1,2026-03-02T07:00,sofa,3.5,", "value", "SOFA must be a whole number from 0 to 24"),
         ("S-1,2026-03-02T07:00,sofa,nan,", "value", "finite"),
         ("S-1,2026-03-02T07:00,SOFA,3,", "name", "lower case"),
         ("S-404,2026-03-02T07:00,sofa,3,", "stay_id", "not known"),

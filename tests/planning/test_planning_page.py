@@ -54,18 +54,25 @@ def test_curve_and_scenarios_are_plotted_for_a_viewer(client: TestClient) -> Non
     needed = int(re.search(r'find no bed</span>\s*<span class="value">(\d+)', page.text).group(1))
     assert needed in beds
     points = _figure(page.text, "scenarios")["data"]
-    labels = points[0]["y"]
+    left = [t for t in points if t.get("xaxis", "x") == "x"]  # the no-bed panel
+    labels = [y for t in left for y in t["y"]]
     # Default scenarios: 10% more emergency admissions, the longest group's stays 20% shorter.
     assert set(labels) == {"current state", "10% more emergency admissions",
                            "stays in G1 20% shorter"}
-    assert len(points[0]["x"]) == 3 and all(0 <= x <= 100 for x in points[0]["x"])
+    xs = [x for t in left for x in t["x"]]
+    assert len(xs) == 3 and all(0 <= x <= 100 for x in xs)
+    # Each error bar has one colour, its markers' (a list made the browser draw them black:
+    # "Invalid color specifier").
+    assert all(isinstance(t["error_x"]["color"], str)
+               and t["error_x"]["color"] == t["marker"]["color"] for t in points)
     assert "1 year" in page.text and "10 replications" in page.text  # the settings used
 
 
 def test_form_chooses_target_and_three_scenarios(client: TestClient) -> None:
     page = client.get(f"/units/{UNIT}/planning?{FORM.replace('target=5', 'target=2')}")
     assert page.status_code == 200
-    labels = _figure(page.text, "scenarios")["data"][0]["y"]
+    labels = [y for t in _figure(page.text, "scenarios")["data"]
+              if t.get("xaxis", "x") == "x" for y in t["y"]]
     assert set(labels) == {"current state", "10% more emergency admissions",
                            "stays in G1 20% shorter", "30% of G1 patients as G2"}
     curve = {t.get("name"): t for t in _figure(page.text, "curve")["data"]}
@@ -100,4 +107,6 @@ def test_unit_without_a_model_explains_the_first_step(demo_db: str) -> None:
     page = TestClient(app).get("/units/KV-CRIT/planning")
     assert page.status_code == 200
     assert "No model has been trained for KV-CRIT" in page.text
-    assert "morrow train --unit KV-CRIT" in page.text and "curve-data" not in page.text
+    # The first step in words a page reader can act on, not a command line (pages issue).
+    assert "Training runs" in page.text and "curve-data" not in page.text
+    assert "morrow train" not in page.text

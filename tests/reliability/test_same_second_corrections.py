@@ -90,7 +90,11 @@ def test_a_nurse_corrects_a_score_under_the_replay_clock(
             follow_redirects=False)
         assert answer.status_code == 303
         messages.append(parse_qs(urlsplit(answer.headers["location"]).query)["message"][0])
-    assert messages == [f"news2 5 recorded for {STAY}", f"news2 2 recorded for {STAY}"]
+    # The stay has no bed in a census, so the answer names the stay; the second entry for
+    # the same observation time is a correction and says what it corrects.
+    assert messages == [f"NEWS2 5 recorded for stay {STAY}, observed Tue 10 Mar 09:00.",
+                        f"NEWS2 2 recorded for stay {STAY}, observed Tue 10 Mar 09:00 "
+                        "(corrects 5)."]
     assert _stored(secured.db_url) == 2
     assert _latest(secured.db_url, NOW) == (2.0, 2.0)
 

@@ -7,6 +7,7 @@ and checks that the state at T is the same from both.
 
 from __future__ import annotations
 
+import contextlib
 import shutil
 from datetime import UTC, datetime, timedelta
 from pathlib import Path
@@ -17,6 +18,7 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from app.ingest import import_file
+from app.ingest.score_entries import NothingToWithdraw, withdraw
 from app.state import latest_observations, load_state
 from app.store import db
 from tests.conftest import UTC_ZONE
@@ -37,16 +39,22 @@ stay_strategy = st.tuples(
     st.sampled_from(["emergency", "elective"]),
     st.integers(18, 95),
     st.lists(st.tuples(st.integers(0, 200), st.integers(0, 24), st.integers(0, 48),
-                       st.one_of(st.none(), st.tuples(st.integers(1, 48), st.integers(0, 24)))),
+                       st.one_of(st.none(), st.tuples(st.integers(1, 48), st.integers(0, 24))),
+                       # a withdrawal, hours after the first entry (0: at the same instant)
+                       st.one_of(st.none(), st.integers(0, 48))),
              max_size=4),
 )
 booking_strategy = st.tuples(st.integers(0, 240), st.integers(0, 15),
                              st.one_of(st.none(), st.integers(0, 200)))
 
 
-def build_files(stays, bookings, cut: float | None) -> dict[str, bytes]:
-    """CSV files of the history; with ``cut`` only what was known ``cut`` hours after BASE."""
+def build_files(stays, bookings, cut: float | None) -> dict[str, object]:
+    """CSV files of the history; with ``cut`` only what was known ``cut`` hours after BASE.
+
+    Withdrawals have no CSV column (they are entered on the page): they come back under
+    "withdrawals" as (stay, observed_at, recorded_at) for ``make_db`` to enter."""
     stay_rows, obs_rows, census_rows, booking_rows = [], [], [], []
+    withdrawals: list[tuple[str, datetime, datetime]] = []
     for i, (adm, los, kind, age, observations) in enumerate(stays):
         if cut is not None and adm > cut:
             continue
@@ -58,7 +66,7 @@ def build_files(stays, bookings, cut: float | None) -> dict[str, bytes]:
         # The importer refuses two values for one stay, time and name recorded at the same
         # instant in one file (its lines have no order of entry): keep the first of a pair.
         recorded_pairs: set[tuple[int, int]] = set()
-        for off, value, delay, correction in observations:
+        for off, value, delay, correction, *withdrawal in observations:
             observed = adm + off
             if los is not None and observed > adm + los:
                 continue
@@ -72,6 +80,13 @@ def build_files(stays, bookings, cut: float | None) -> dict[str, bytes]:
                 if cut is not None and (observed > cut or recorded > cut):
                     continue
                 obs_rows.append(f"S-{i},{ts(observed)},sofa,{v},{ts(recorded)}")
+            if withdrawal and withdrawal[0] is not None and (observed, observed + delay) in (
+                    recorded_pairs) and not any(w[:2] == (f"S-{i}", BASE + timedelta(
+                        hours=observed)) for w in withdrawals):
+                withdrawn_at = observed + delay + withdrawal[0]
+                if cut is None or withdrawn_at <= cut:
+                    withdrawals.append((f"S-{i}", BASE + timedelta(hours=observed),
+                                        BASE + timedelta(hours=withdrawn_at)))
         for day in range(1, 14):
             at = day * 24
             if cut is not None and at > cut:
@@ -92,16 +107,21 @@ def build_files(stays, bookings, cut: float | None) -> dict[str, bytes]:
         "census": csv_bytes(CENSUS_HEADER, *census_rows),
         "observations": csv_bytes(OBS_HEADER, *obs_rows),
         "bookings": csv_bytes(BOOKING_HEADER, *booking_rows),
+        "withdrawals": withdrawals,
     }
 
 
-def make_db(template: Path, folder: Path, name: str, files: dict[str, bytes]) -> str:
+def make_db(template: Path, folder: Path, name: str, files: dict[str, object]) -> str:
     path = folder / f"{name}.db"
     shutil.copy(template, path)
     url = f"sqlite:///{path}"
     with db.session_scope(url) as session:
         for kind in ("units", "stays", "census", "observations", "bookings"):
             import_file(session, kind, files[kind], f"{kind}.csv", tz=UTC_ZONE)
+        for stay, observed, recorded in files["withdrawals"]:  # type: ignore[attr-defined]
+            # NothingToWithdraw: already withdrawn, or its entry was left out
+            with contextlib.suppress(NothingToWithdraw):
+                withdraw(session, stay, "sofa", observed, recorded_at=recorded, actor="test")
     return url
 
 
@@ -169,3 +189,34 @@ def test_demo_occupancy_from_stays_matches_every_census_snapshot(demo_db: str) -
             assert len(state.snapshots) >= 50
             for taken_at, occupancy in state.snapshots.itertuples(index=False):
                 assert state.occupancy_at(taken_at) == occupancy, (unit.code, taken_at)
+
+
+def test_a_withdrawn_latest_entry_leaves_no_value_from_its_recorded_at(
+        migrated_template, tmp_path) -> None:
+    """DATA_CONTRACT.md "observations.csv": append-only, an entry counts from its recorded_at.
+    A withdrawal (observation.withdrawn, migration 0008) is such an entry: before it the
+    value counts, after it that measurement has none and the one before it is the latest;
+    a value entered after the withdrawal counts again. Worked by hand."""
+    files = build_files([(0, None, "emergency", 70, [(6, 11, 0, None), (30, 8, 1, None)])],
+                        [], None)
+    url = make_db(migrated_template, tmp_path, "withdrawn", files)
+    observed = BASE + timedelta(hours=30)
+
+    def sofa_at(hours: float) -> tuple[float, float]:
+        with db.session_scope(url) as session:
+            row = load_state(session, "U-T", BASE + timedelta(hours=hours),
+                             UTC_ZONE).current_stays().iloc[0]
+        return row["sofa"], row["sofa_hours"]
+
+    with db.session_scope(url) as session:
+        withdraw(session, "S-0", "sofa", observed, recorded_at=BASE + timedelta(hours=35),
+                 actor="nurse")
+    assert sofa_at(34) == (8.0, 4.0)
+    assert sofa_at(36) == (11.0, 30.0)  # the 8 is withdrawn: the value observed at 6 h is latest
+    with db.session_scope(url) as session, pytest.raises(NothingToWithdraw):
+        withdraw(session, "S-0", "sofa", observed, recorded_at=BASE + timedelta(hours=36),
+                 actor="nurse")
+    with db.session_scope(url) as session:
+        import_file(session, "observations", csv_bytes(
+            OBS_HEADER, f"S-0,{ts(30)},sofa,8,{ts(37)}"), "again.csv", tz=UTC_ZONE)
+    assert sofa_at(38) == (8.0, 8.0)  # entered again after the withdrawal: counts again

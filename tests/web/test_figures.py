@@ -11,7 +11,8 @@ QUANTILES = {"0.025": 8, "0.1": 9, "0.25": 10, "0.5": 11, "0.75": 12, "0.9": 13,
 
 
 def test_fan_chart_is_valid_plotly_json() -> None:
-    forecast = {"days": [{"census_at": f"2026-12-0{i + 1}T00:00:00+00:00", "beds": 16,
+    forecast = {"as_of": "2026-11-30T08:00:00+00:00",
+                "days": [{"census_at": f"2026-12-0{i + 1}T00:00:00+00:00", "beds": 16,
                           "quantiles": QUANTILES} for i in range(7)]}
     figure = fan_chart(forecast, 12, "now 08:00")
     # Reference: plotly's figure validation raises on any unknown property or bad value.
