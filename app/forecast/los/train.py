@@ -12,6 +12,7 @@ from zoneinfo import ZoneInfo
 import numpy as np
 import pandas as pd
 
+from app.forecast.los.clock_choice import choose_newcomer_clock
 from app.forecast.los.constants import (
     HORIZON_STEPS,
     LANDMARK_CLOCK,
@@ -151,8 +152,10 @@ def train_los(state: UnitState, *, test_days: float | None = None,
     design = make_design(full, rows, names)
     hazard = _fit_hazard(design, full, rows, depth=params["max_depth"],
                          min_stays=_min_stays(params, full, rows))
+    newcomer_clock = choose_newcomer_clock(design, state.stays, until_ns, group_params, seed,
+                                           hazard.profile, tz, state.census_time)
     groups = _fit_groups(design, state.stays, until_ns, group_params, seed,
-                         clock=(hazard.profile, tz))
+                         clock=(hazard.profile, tz) if newcomer_clock["chosen"] else None)
     metrics["train_seconds"] = timer.perf_counter() - clock_start
     metrics["training_rows"] = int(len(rows.event))
     payload = {
@@ -175,7 +178,8 @@ def train_los(state: UnitState, *, test_days: float | None = None,
                           "ensemble": ({"iterations": ensemble_iter,
                                         "val_loglik": max(ensemble_scores)}
                                        if ensemble_iter is not None else None),
-                          "groups": {"chosen": group_params, "grid": group_grid}},
+                          "groups": {"chosen": group_params, "grid": group_grid},
+                          "newcomer_clock": newcomer_clock},
             "uses": CURVE_USES,
         },
     }
