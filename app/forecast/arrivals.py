@@ -6,8 +6,9 @@ not yet booked, all from what was known at the training cut-off.
   profile of their arrival.
 - The unit's capacity: a full unit turns emergencies away (they go to another unit or
   hospital) and those leave no row in the files, so admitted counts understate the demand
-  exactly when the unit is busy. The most patients the unit has held beyond its staffed beds
-  (``excess_beds``, escalation beds) gives its ceiling, staffed beds + excess; the time the
+  exactly when the unit is busy. The occupancy beyond its staffed beds at which the unit
+  stops admitting most emergencies (``capacity_excess``: the admission chance by occupancy
+  level, escalation beds) gives its ceiling, staffed beds + excess; the time the
   unit was at that ceiling was closed to emergencies. The daily count is fitted with the
   share of the day open to admissions as its exposure (weighted by the arrival clock
   profile), and the clock profile is divided by each hour's open share: both then describe
@@ -29,6 +30,7 @@ from datetime import date, datetime, time, timedelta
 from typing import Any
 
 import numpy as np
+import numpy.typing as npt
 import pandas as pd
 
 from app.forecast.training_data import TooLittleHistory
@@ -95,24 +97,87 @@ def _occupancy_at(state: UnitState, at_ns: np.ndarray) -> np.ndarray:
             - np.searchsorted(discharged, at_ns, side="right"))
 
 
-def capacity_excess(state: UnitState, first: date, last: date) -> int | None:
-    """The most patients the unit held beyond its staffed beds right after an admission on the
-    local days ``first``..``last`` (0 if it never went over); None without a bed count.
+# The unit is taken to turn emergencies away from the lowest occupancy (beyond its staffed
+# beds) at which it admitted fewer than this share of the emergencies its open rate brings:
+# where an arrival is more likely turned away than admitted.
+ADMIT_SHARE = 0.5
+# Occupancy levels held for less than this many days of demand (clock-profile weighted) say
+# too little about the admission chance there and are passed over.
+MIN_LEVEL_DAYS = 1.0
 
-    A unit that admits up to staffed beds + this many and no further turns arrivals away at
-    that ceiling; the maximum is where occupancy peaks (just after an admission)."""
+
+def soft_excess(admitted_over: npt.ArrayLike, time_over: npt.ArrayLike,
+                time_days: npt.ArrayLike, *, admit_share: float = ADMIT_SHARE,
+                min_days: float = MIN_LEVEL_DAYS) -> int:
+    """The ceiling beyond staffed beds learnt from the admission chance by occupancy level.
+
+    ``admitted_over``: occupancy minus staffed beds just before each emergency admission;
+    ``time_over`` and ``time_days``: the same level at instants of a regular grid and the days
+    of demand each stands for (its share of the day's arrival clock profile). The admissions
+    per demand-day at level o, over those at the levels below the staffed beds, estimate the
+    chance an arrival finding o is admitted; the answer is the lowest level o >= 0, held for
+    at least ``min_days``, where that chance is below ``admit_share``. A hard ceiling c gives
+    c (nothing admitted there), a night of escalation beds far above it does not move it (the
+    maximum of the levels admitted at would). Without such a level: the highest level
+    admitted at, plus one."""
+    admitted = np.asarray(admitted_over, dtype=np.int64)
+    levels = np.asarray(time_over, dtype=np.int64)
+    weight = np.asarray(time_days, dtype=float)
+    fallback = max(0, int(admitted.max(initial=-1)) + 1)
+    if not admitted.size or not levels.size:
+        return fallback
+    low = min(int(admitted.min()), int(levels.min()))
+    n_levels = max(int(admitted.max()), int(levels.max())) - low + 1
+    count = np.bincount(admitted - low, minlength=n_levels)
+    exposure = np.bincount(levels - low, weights=weight, minlength=n_levels)
+    level = np.arange(n_levels) + low
+    below = level < 0
+    if exposure[below].sum() < min_days or count[below].sum() == 0:
+        return fallback
+    open_rate = count[below].sum() / exposure[below].sum()
+    for o in np.flatnonzero((level >= 0) & (exposure >= min_days)):
+        if count[o] < admit_share * open_rate * exposure[o]:
+            return int(level[o])
+    return fallback
+
+
+def capacity_excess(state: UnitState, first: date, last: date) -> int | None:
+    """The unit's ceiling beyond its staffed beds on the local days ``first``..``last`` (0 if it
+    never went over); None without a bed count.
+
+    Learnt from the emergency admission chance by occupancy level (:func:`soft_excess`), not
+    from the single largest overflow, which one night of escalation beds would loosen for
+    good."""
     stays = state.stays
     local_day = _local(stays["admitted_at"], state).dt.date
     inside = ((local_day >= first) & (local_day <= last)).to_numpy()
     if not inside.any():
         return None
-    beds_by_day = {d: state.beds_on(d) for d in set(local_day[inside])}
-    beds = np.array([np.nan if beds_by_day[d] is None else beds_by_day[d]
-                     for d in local_day[inside]], dtype=float)
-    if np.all(np.isnan(beds)):
+    n_days = (last - first).days + 1
+    beds = np.array([state.beds_on(first + timedelta(days=i)) for i in range(n_days)],
+                    dtype=object)
+    if all(b is None for b in beds):
         return None
-    occupied = _occupancy_at(state, _ns(stays["admitted_at"])[inside])
-    return max(0, int(np.nanmax(occupied - beds)))
+    staffed = np.array([np.nan if b is None else float(b) for b in beds])
+    emergency = inside & (stays["admission_type"] == "emergency").to_numpy()
+    at_ns = _ns(stays["admitted_at"])[emergency]
+    day_of = np.array([(d - first).days for d in local_day[emergency]], dtype=np.int64)
+    # Occupancy just before each admission: the count right after it, less the patient.
+    before = _occupancy_at(state, at_ns) - 1 - staffed[day_of]
+    start = pd.Timestamp(localize(datetime.combine(first, time(0)), state.tz))
+    stop = pd.Timestamp(localize(datetime.combine(last + timedelta(days=1), time(0)), state.tz))
+    grid = pd.date_range(start, stop, freq=f"{OPEN_GRID_MINUTES}min", inclusive="left")
+    local = grid.tz_convert(state.tz)
+    grid_day = np.clip((local.tz_localize(None).normalize() - pd.Timestamp(first)).days
+                       .to_numpy(), 0, n_days - 1)
+    level = _occupancy_at(state, np.asarray(grid.asi8, dtype=np.int64)) - staffed[grid_day]
+    profile = hourly_profile(_local(stays["admitted_at"], state)[emergency].dt.hour)
+    days = profile[np.asarray(local.hour, dtype=np.int64)] * 24 * OPEN_GRID_MINUTES / 1440
+    known_b, known_g = ~np.isnan(before), ~np.isnan(level)
+    if not known_b.any():
+        return None
+    return soft_excess(before[known_b].astype(np.int64), level[known_g].astype(np.int64),
+                       days[known_g])
 
 
 def open_shares(state: UnitState, first: date, last: date, excess: int,

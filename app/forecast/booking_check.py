@@ -176,8 +176,11 @@ def booking_base(state: UnitState, record: ModelRecord, days: int
     """The forecast's inputs and occupancy at the next ``days`` census instants, without any
     candidate: the same for every check of the unit at this instant and model."""
     inputs = forecast_inputs(state, record, days)
+    # The current stays on the ceiling's grid, as the unit page's forecast has them.
     return inputs, occupancy_days(inputs.predictions.p_present, inputs.booked, inputs.streams,
-                                  inputs.census_at, inputs.beds, inputs.limits)
+                                  inputs.census_at, inputs.beds, inputs.limits,
+                                  current_at=(None if inputs.p_grid is None
+                                              else lambda _grid: inputs.p_grid))
 
 
 def _night_name(night: Night, today: date) -> str:

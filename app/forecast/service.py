@@ -30,6 +30,7 @@ from app.forecast.los import LosModel, predict_stays, train_los
 from app.forecast.models import newest_model, save_model
 from app.forecast.newcomer_clock import elapsed
 from app.state import UnitState, load_state
+from app.stats.loss import LOSS_PATHS, LossDraws, draw_losses
 from app.stats.occupancy import (
     ArrivalStream,
     BookedAdmissions,
@@ -48,6 +49,9 @@ from app.timeutil import census_instants_after, iso, localize
 FORMAT = 1
 DEFAULT_DAYS = 7
 WEEK_PATHS = 5000
+# The current stays are asked of the length-of-stay model at every this many instants of the
+# ceiling's grid (hourly slots) and interpolated in between.
+GRID_STRIDE = 3
 NS_PER_DAY = 86_400e9
 
 
@@ -188,6 +192,8 @@ class ForecastInputs:
     streams: list[ArrivalStream]
     # The most patients the unit holds at each instant (None: no ceiling known).
     limits: list[int | None] | None = None
+    # Current stays' P(in) at the instants of the ceiling's paths (``Backdrop.losses.grid``).
+    p_grid: Any = None
 
 
 @dataclass(frozen=True, eq=False)
@@ -212,6 +218,8 @@ class Backdrop:
     streams: list[ArrivalStream]
     limits: list[int | None]
     draws: PathDraws | None
+    # Paths that turn arrivals away at their arrival instant (None: no ceiling).
+    losses: LossDraws | None = None
 
     @cached_property
     def newcomers(self) -> Newcomers:
@@ -249,10 +257,14 @@ def forecast_backdrop(state: UnitState, record: ModelRecord, *, days: int = DEFA
     if paths > 0 and all(b is not None for b in beds):
         draws = draw_paths(len(stay_ids), booked, streams, census_at, paths,
                            np.random.default_rng(seed))
+    limits = _limits(beds, excess_beds(arrivals), len(stay_ids))
+    losses = None
+    if any(c is not None for c in limits):
+        losses = draw_losses(booked, streams, census_at, LOSS_PATHS,
+                             np.random.default_rng(seed), seed=seed)
     return Backdrop(unit=state.unit, as_of=state.as_of, stay_ids=stay_ids, los=los,
                     instants=instants, census_at=census_at, local_days=local_days, beds=beds,
-                    booked=booked, streams=streams,
-                    limits=_limits(beds, excess_beds(arrivals), len(stay_ids)), draws=draws)
+                    booked=booked, streams=streams, limits=limits, draws=draws, losses=losses)
 
 
 def _limits(beds: list[int | None], excess: int | None, in_unit: int) -> list[int | None]:
@@ -269,11 +281,38 @@ def forecast_inputs(state: UnitState, record: ModelRecord, days: int) -> Forecas
 
 
 def _inputs(backdrop: Backdrop, state: UnitState) -> ForecastInputs:
+    predictions, p_grid = _predictions(backdrop, state)
     return ForecastInputs(
         instants=backdrop.instants, census_at=backdrop.census_at,
-        local_days=backdrop.local_days, beds=backdrop.beds,
-        predictions=predict_stays(backdrop.los, state, backdrop.instants),
-        booked=backdrop.booked, streams=backdrop.streams, limits=backdrop.limits)
+        local_days=backdrop.local_days, beds=backdrop.beds, predictions=predictions,
+        booked=backdrop.booked, streams=backdrop.streams, limits=backdrop.limits,
+        p_grid=p_grid)
+
+
+def _predictions(backdrop: Backdrop, state: UnitState) -> tuple[Any, np.ndarray | None]:
+    """The current stays at the census instants and, under a ceiling, also at every instant
+    of the paths' grid (one call of the length-of-stay model for both)."""
+    if backdrop.losses is None:
+        return predict_stays(backdrop.los, state, backdrop.instants), None
+    grid = backdrop.losses
+    # The model is asked at every third grid instant (3 hours apart) and at the census
+    # instants, and interpolated linearly in time in between.
+    asked = np.union1d(np.union1d(np.arange(0, grid.grid.size, GRID_STRIDE),
+                                  grid.census_index), [grid.grid.size - 1])
+    as_of = state.as_of.to_pydatetime()
+    at = [as_of + timedelta(microseconds=round(float(t) * 86_400e6)) for t in grid.grid[asked]]
+    census_pos = np.searchsorted(asked, grid.census_index)
+    for instant, g in zip(backdrop.instants, census_pos, strict=True):
+        at[int(g)] = instant
+    on_grid = predict_stays(backdrop.los, state, at)
+    p_asked = on_grid.p_present
+    hi = np.clip(np.searchsorted(asked, np.arange(grid.grid.size)), 1, max(asked.size - 1, 1))
+    lo = hi - 1 if asked.size > 1 else hi
+    t0, t1 = grid.grid[asked[lo]], grid.grid[asked[hi]]
+    w = np.where(t1 > t0, (grid.grid - t0) / np.where(t1 > t0, t1 - t0, 1.0), 1.0)
+    p_grid = p_asked[:, lo] * (1.0 - w) + p_asked[:, hi] * w
+    return replace(on_grid, instants=tuple(backdrop.instants),
+                   p_present=p_asked[:, census_pos]), p_grid
 
 
 def expected_admissions(inputs: ForecastInputs) -> list[float]:
@@ -316,7 +355,8 @@ def forecast_on(backdrop: Backdrop, state: UnitState, record: ModelRecord
     if tuple(inputs.predictions.stay_ids) != backdrop.stay_ids:
         raise ValueError("state: other current stays than the backdrop's")
     p_present = inputs.predictions.p_present
-    results = with_current(p_present, backdrop.newcomers, inputs.beds, backdrop.limits)
+    results = with_current(p_present, backdrop.newcomers, inputs.beds, backdrop.limits,
+                           draws=backdrop.losses, p_grid=inputs.p_grid)
     out_days = []
     for instant, local_day, bed_count, result in zip(inputs.instants, inputs.local_days,
                                                      inputs.beds, results, strict=True):

@@ -19,24 +19,22 @@ week") need joint paths, drawn by :func:`simulate_paths` from the same inputs: a
 keeps one uniform draw for the week (present at h_k while U < p_i(h_k)), so its days are
 consistent; arrivals and bookings draw a whole stay each.
 
-A unit with a ceiling (``limits``: the most patients it holds, staffed plus escalation beds)
-turns arrivals away when full, which the sum above ignores: with the arrival streams at their
-*demand*, the infinite-server count has mass above the ceiling and too much spread. Given the
-f patients who are never turned away (current stays, bookings), the arrivals still present are
-taken as their infinite-server count truncated at the room left, c - f, and renormalised: the
-modified offered-load approximation of a loss system with time-varying arrivals (Jagerman
-1975, Bell System Technical Journal 54:625-661; analysed by Massey & Whitt 1994, Annals of
-Applied Probability 4:1145-1160; both cited from memory), applied to the arrivals given the
-room the others leave. In steady state with Poisson arrivals and no one else in the unit it is
-exact whatever the stay distribution: the truncated Poisson of the Erlang loss model, so
-P(full) is the Erlang B blocking probability. Truncating the whole total instead would also
-turn current patients away; on the demo ward that put too little probability on a full unit
-(2026-05..10, every second morning, horizons 1-7: 8.1 % of outcomes at the ceiling, 5.7 %
-forecast by the whole-total truncation, 7.7 % by this one; critical care 11.0 %, 10.0 %,
-12.1 %). The components stay expected counts that add up to the mean (current stays and
-bookings unchanged). In joint paths, arrivals that would take a
-path over the ceiling at a census instant are turned away there (the latest first) and stay
-away on later days.
+A unit with a ceiling (``limits``: the most patients it holds) turns an arrival away when it
+comes to a full unit, which the sum above ignores. Current stays and bookings are never turned
+away. The per-night pmf is the exact one without a ceiling, corrected by paths that follow the
+count between census instants and turn each arrival away at its arrival instant
+(:mod:`app.stats.loss`; a path that never reaches the ceiling changes nothing, so where the
+ceiling is out of reach the answer is the exact one). Without those paths (``loss_paths=0``)
+the arrivals still present are truncated at the room left at the census instant, c - f, given
+the f patients never turned away (the modified offered-load approximation; Jagerman 1975, Bell
+System Technical Journal 54:625-661, cited from memory). That is exact in steady state but
+blind to the hours before the census: a unit full in the morning turns the day's arrivals away
+even if beds free up by midnight, and against a loss simulation it put P(full) at the first
+census 0.11 too high on a unit that starts full (ceilings 10 and 16, loads 12 and 18) and
+0.05 too low at moderate load (``tests/stats/test_loss_blocking.py``). In joint paths,
+arrivals that would take a path over the ceiling at a census instant are turned away there
+(the latest first) and stay away on later days; :func:`with_exact_marginals` then gives each
+night the per-night pmf.
 
 Times are in days after ``as_of``. Arrivals are placed at the midpoints of their slots in both
 the exact and the simulated forms, so the two describe the same model.
@@ -44,7 +42,7 @@ the exact and the simulated forms, so the two describe the same model.
 
 from __future__ import annotations
 
-from collections.abc import Mapping, Sequence
+from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any, Protocol
 
@@ -52,6 +50,15 @@ import numpy as np
 import numpy.typing as npt
 
 from app.stats.cancel import checkpoint
+from app.stats.loss import (
+    LOSS_PATHS,
+    LossDraws,
+    Losses,
+    corrected_pmf,
+    draw_losses,
+    interpolated_current,
+    losses,
+)
 from app.stats.poisson_binomial import (
     convolve_pmfs,
     negative_binomial_pmf,
@@ -316,6 +323,10 @@ def occupancy_days(
     census_at: npt.ArrayLike,
     beds: Sequence[int | None],
     limits: Sequence[int | None] | None = None,
+    *,
+    current_at: Callable[[FloatArray], npt.ArrayLike] | None = None,
+    loss_paths: int = LOSS_PATHS,
+    seed: int = 0,
 ) -> list[OccupancyDay]:
     """Exact occupancy distribution at each census instant (within the unit's ceiling, if set).
 
@@ -331,25 +342,50 @@ def occupancy_days(
         Staffed beds at each instant (None: not set, no p_over_capacity).
     limits : sequence of int or None, length K, optional
         The most patients the unit can hold at each instant (None: no ceiling): arrivals are
-        turned away there (module docstring), current stays and bookings never are.
+        turned away there at the instant they come (:mod:`app.stats.loss`), current stays and
+        bookings never are.
+    current_at : callable, optional
+        Each current stay's probability of being in at given instants (days after as_of),
+        shape (n_stays, len(t)); None: interpolated from ``p_current``
+        (:func:`app.stats.loss.interpolated_current`). Used only under a ceiling.
+    loss_paths : int
+        Paths of the ceiling's correction (0: arrivals truncated at the census instant, as
+        ``_within_limit``).
+    seed : int
+        Seed of those paths.
 
     Returns
     -------
     list of OccupancyDay
     """
-    return with_current(p_current, newcomers(booked, streams, census_at), beds, limits)
+    others = newcomers(booked, streams, census_at)
+    draws = p_grid = None
+    if limits is not None and any(c is not None for c in limits) and loss_paths > 0:
+        draws = draw_losses(booked, streams, census_at, loss_paths,
+                            np.random.default_rng(seed), seed=seed)
+        if current_at is not None:
+            p_grid = np.asarray(current_at(draws.grid), dtype=float)
+    return with_current(p_current, others, beds, limits, draws=draws, p_grid=p_grid)
 
 
 def with_current(p_current: npt.ArrayLike, others: Newcomers, beds: Sequence[int | None],
-                 limits: Sequence[int | None] | None = None) -> list[OccupancyDay]:
+                 limits: Sequence[int | None] | None = None, *, draws: LossDraws | None = None,
+                 p_grid: npt.ArrayLike | None = None) -> list[OccupancyDay]:
     """Add the current stays (Poisson-binomial) to the newcomers, instant by instant, and
-    turn arrivals away at the ceiling."""
+    turn arrivals away at the ceiling: at the instant they come, by the paths ``draws``
+    (:mod:`app.stats.loss`; ``p_grid`` the current stays on their grid, interpolated from
+    ``p_current`` if None), or without draws at the census instant (``_within_limit``)."""
     n_instants = len(others.booked)
     p_now = np.asarray(p_current, dtype=float).reshape(-1, n_instants)
     ceiling = [None] * n_instants if limits is None else list(limits)
     if len(ceiling) != n_instants:
         raise ValueError(f"limits: needs one per census instant ({n_instants}), "
                          f"got {len(ceiling)}")
+    lost = None
+    if draws is not None and any(c is not None for c in ceiling):
+        if p_grid is None:
+            p_grid = interpolated_current(p_now, draws.grid[draws.census_index], draws.grid)
+        lost = losses(draws, p_grid, ceiling)
     out = []
     for k in range(n_instants):
         checkpoint()
@@ -358,7 +394,9 @@ def with_current(p_current: npt.ArrayLike, others: Newcomers, beds: Sequence[int
         stream_mean = others.arriving_mean[k]
         pmf = convolve_pmfs(fixed, *arriving.values())
         limit = ceiling[k]
-        if limit is not None and arriving and pmf.size > limit + 1:
+        if lost is not None:
+            pmf, stream_mean = _blocked(pmf, stream_mean, lost, k, limit)
+        elif limit is not None and arriving and pmf.size > limit + 1:
             pmf, stream_mean = _within_limit(fixed, arriving, int(limit))
         components = {"current": float(p_now[:, k].sum()), "emergency": 0.0,
                       "elective": others.booked_mean[k]}
@@ -370,6 +408,24 @@ def with_current(p_current: npt.ArrayLike, others: Newcomers, beds: Sequence[int
         out.append(OccupancyDay(pmf=pmf, mean=pmf_mean(pmf), quantiles=quantiles,
                                 p_over_capacity=over, components=components))
     return out
+
+
+def _blocked(exact: FloatArray, stream_mean: Mapping[str, float], lost: Losses, k: int,
+             limit: int | None) -> tuple[FloatArray, dict[str, float]]:
+    """Census instant k's pmf and streams' expected counts with arrivals turned away as the
+    paths say (:func:`app.stats.loss.corrected_pmf`); the streams' counts then take up any
+    difference the clipping left, so the components still add up to the mean."""
+    pmf = corrected_pmf(exact, lost.free[k], lost.lost[k].sum(axis=1), limit)
+    if pmf is exact:
+        return exact, dict(stream_mean)
+    means = dict(stream_mean)
+    for s, name in enumerate(lost.stream_names):
+        means[name] = means.get(name, 0.0) - float(lost.lost[k][:, s].mean())
+    total = sum(means.values())
+    gap = pmf_mean(pmf) - pmf_mean(exact) + sum(stream_mean.values()) - total
+    if means and total > 0:
+        means = {name: v + gap * v / total for name, v in means.items()}
+    return pmf, means
 
 
 @dataclass(frozen=True, eq=False)

@@ -1,0 +1,397 @@
+"""Arrivals turned away at the instant they come, when the unit is full.
+
+A unit with a ceiling c (the most patients it holds) turns an arrival away when, at the
+instant it comes, c patients are in. The exact per-night occupancy of
+:mod:`app.stats.occupancy` (current stays, bookings and arrival streams, each independent)
+knows the count only at census instants, so it cannot see this: a unit full this morning
+turns away the arrivals of the day even if, by midnight, enough patients have gone home to
+make room for them.
+
+The count between census instants is followed by simulation on a grid of instants: every
+arrival slot, every booking's admission and every census instant (hourly slots, so about 24
+points a day). On each of ``n`` paths
+
+- a current stay keeps one uniform U for the week and is in at grid instant t while
+  U < p_i(t) (its probability of still being in, on the same grid);
+- a booking goes ahead with its probability and stays a drawn length (never turned away);
+  lengths are drawn by inverse transform on the grid (a uniform u against the stay's
+  survival between grid instants, on the unit's clock);
+- arrivals are drawn slot by slot as in :func:`app.stats.occupancy.draw_paths` (a day's
+  gamma-distributed rate where the stream is negative binomial), each with a drawn length of
+  stay on the unit's clock;
+
+and a path's arrivals are admitted in time order while the count at their instant is below
+the ceiling (arrivals of one slot come at its midpoint, one after another).
+
+The per-night pmf is the exact one *without* a ceiling, corrected by the simulation: with N
+the count with nobody turned away and N' the count with arrivals turned away on the same path,
+
+    P(N' = n) = P(N = n) + E[1{N' = n} - 1{N = n}]     for n <= c,
+
+the first term exact and the second estimated over the paths (a control variate: a path where
+no arrival was turned away before the census instant contributes exactly zero, so where the
+ceiling is never reached the answer is the exact one, and the Monte-Carlo error comes only
+from the paths that reached it). Above the ceiling only current stays and bookings can take
+the count (nobody else gets in), and there P(N' = n) is the paths' share; the pmf is
+renormalised after clipping the estimate at zero. Each stream's expected count still present
+loses the mean count of its turned-away arrivals that would still be in.
+
+Why this and not a chain on the count: a birth-death chain stepped hourly would need the
+current patients' departures as a Markov process of the count alone (they are independent and
+each has its own hazard, so the count is not Markov) and the newcomers' phase-type stays as a
+single hazard; both are approximations whose error does not vanish with more work, while the
+simulation here is exact up to its Monte-Carlo error and the hourly slots the exact forecast
+already uses. The paths that never reach the ceiling cost one vectorised pass; only those that
+do are followed instant by instant.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+import numpy.typing as npt
+
+from app.stats.cancel import checkpoint
+
+FloatArray = npt.NDArray[np.float64]
+IntArray = npt.NDArray[np.int64]
+
+# Paths of the correction. At 1,000 paths the Monte-Carlo standard error of P(full) on a night
+# where every path reaches the ceiling is at most 0.5 / sqrt(1000) = 0.016; nights the ceiling
+# is rarely reached have much less (only those paths carry noise). A 7-day forecast of a
+# 28-bed unit spends about 10 ms on them (tests/benchmarks/test_bench_forecast.py).
+LOSS_PATHS = 1000
+
+__all__ = ["LOSS_PATHS", "LossDraws", "Losses", "corrected_pmf", "draw_losses",
+           "interpolated_current", "loss_grid", "losses"]
+
+
+def loss_grid(booked: Any, streams: Sequence[Any], census_at: npt.ArrayLike) -> FloatArray:
+    """The instants (days after as_of) at which the count matters: every arrival slot and
+    booking admission up to the last census instant, and the census instants."""
+    h = np.asarray(census_at, dtype=float)
+    last = float(h.max()) if h.size else 0.0
+    parts = [h, np.asarray(booked.admit_at, dtype=float)]
+    parts += [np.asarray(s.slot_at, dtype=float) for s in streams]
+    every = np.concatenate(parts)
+    return np.unique(every[every <= last])
+
+
+@dataclass(frozen=True, eq=False)
+class LossDraws:
+    """Everything random in the paths except the current stays' uniforms.
+
+    Arrivals (all streams and paths together) are sorted by (grid index, path); ``rank`` is an
+    arrival's place among its path's arrivals in the same slot; ``leave`` is the first grid
+    index at which it would be gone (``grid.size`` if still in at the end)."""
+
+    grid: FloatArray
+    census_index: IntArray
+    n_paths: int
+    seed: int
+    at: IntArray
+    path: IntArray
+    leave: IntArray
+    stream: IntArray
+    rank: IntArray
+    booked_in: npt.NDArray[np.int32]          # (grid, paths) bookings in at each instant
+    stream_names: tuple[str, ...]
+
+
+def _survival_rows(stay: Any, tau: FloatArray) -> FloatArray:
+    """(grid, grid) S(tau[g'] - tau[g]) for g' > g, and 2 (above any uniform) for g' <= g:
+    row g gives, for a stay begun at grid instant g, its chance of lasting to each later one."""
+    lags = tau[None, :] - tau[:, None]
+    later = np.triu(np.ones(lags.shape, dtype=bool), k=1)
+    # S on an hourly lattice of times, interpolated linearly in between (a length-of-stay
+    # survival of days moves by far less than the paths' Monte-Carlo error within an hour).
+    top = float(lags.max(initial=0.0))
+    knots = np.linspace(0.0, top, max(int(np.ceil(top * 24)), 1) + 1)
+    out = np.full(lags.shape, 2.0)
+    out[later] = np.interp(lags[later], knots, np.asarray(stay.sf(knots), dtype=float))
+    return np.minimum.accumulate(out, axis=1)
+
+
+def _leave_index(rows: FloatArray, start: IntArray, u: FloatArray) -> IntArray:
+    """First grid index at which a stay begun at ``start`` with survival draw ``u`` is over.
+
+    A stay of length L = S^-1(u) (u uniform, so L has survival S) is in at a later instant
+    while S(time since start) > u: the number of grid instants where that holds, plus those
+    up to ``start``, is the first index at which it is gone (inverse-transform sampling on
+    the grid, with no lengths drawn)."""
+    size = rows.shape[1]
+    # Row g's values -S lie in [-2, 0]; shifted by 3 g the rows laid end to end increase, so
+    # one search over all of them answers every stay at once.
+    lattice = (3.0 * np.arange(rows.shape[0])[:, None] - rows).ravel()
+    return np.searchsorted(lattice, 3.0 * start - u, side="left") - start * size
+
+
+def draw_losses(booked: Any, streams: Sequence[Any], census_at: npt.ArrayLike, n_paths: int,
+                rng: np.random.Generator, *,
+                clock: Callable[[FloatArray], FloatArray] | None = None,
+                seed: int = 0) -> LossDraws:
+    """Draw the bookings' and arrivals' part of ``n_paths`` paths on the grid.
+
+    ``clock`` maps grid instants (days after as_of) to the time the newcomers' stays run on
+    (the unit's discharge clock; None: calendar days), as the streams' and bookings'
+    ``clock`` matrices do between slots and census instants."""
+    h = np.asarray(census_at, dtype=float)
+    grid = loss_grid(booked, streams, h)
+    tau = (_grid_clock(booked, streams, h, grid) if clock is None
+           else np.asarray(clock(grid), dtype=float))
+    size = grid.size
+    census_index = np.searchsorted(grid, h).astype(np.int64)
+    # Bookings: +1 from admission, -1 from the first instant the stay is over. Bookings of
+    # one patient group share a distribution (its survival between grid instants, once).
+    change = np.zeros((size + 1, n_paths), dtype=np.int32)
+    admit_at = np.asarray(booked.admit_at, dtype=float)
+    inside = np.flatnonzero(admit_at <= (grid[-1] if size else -np.inf))
+    goes = rng.random((len(booked.p_go), n_paths)) < np.asarray(booked.p_go)[:, None]
+    by_stay: dict[int, list[int]] = {}
+    for j in inside:
+        by_stay.setdefault(id(booked.stays[j]), []).append(int(j))
+    columns = np.arange(n_paths)
+    for rows in by_stay.values():
+        survival = _survival_rows(booked.stays[rows[0]], tau)
+        admitted_at = np.searchsorted(grid, admit_at[rows]).astype(np.int64)
+        went = goes[rows]                                   # (bookings of the group, paths)
+        booking, on_path = np.nonzero(went)
+        gone = _leave_index(survival, admitted_at[booking], rng.random(booking.size))
+        np.add.at(change, admitted_at, went.astype(np.int32))
+        change -= np.bincount(gone * n_paths + columns[on_path],
+                              minlength=(size + 1) * n_paths).reshape(size + 1, n_paths
+                                                                      ).astype(np.int32)
+    booked_in = (np.cumsum(change, axis=0, dtype=np.int32)[:size] if len(booked.p_go)
+                 else np.zeros((size, n_paths), dtype=np.int32))
+    at: list[IntArray] = []
+    path: list[IntArray] = []
+    leave: list[IntArray] = []
+    which: list[IntArray] = []
+    for s, stream in enumerate(streams):
+        drawn = _arrivals(stream, float(grid[-1]) if size else 0.0, n_paths, rng)
+        if drawn is None:
+            continue
+        slot_at, slot, on_path = drawn
+        start = np.searchsorted(grid, slot_at)[slot].astype(np.int64)
+        at.append(start)
+        path.append(on_path)
+        leave.append(_leave_index(_survival_rows(stream.stay, tau), start,
+                                  rng.random(start.size)))
+        which.append(np.full(start.size, s, dtype=np.int64))
+    if at:
+        a_at, a_path = np.concatenate(at), np.concatenate(path)
+        a_leave, a_stream = np.concatenate(leave), np.concatenate(which)
+    else:
+        a_at = a_path = a_leave = a_stream = np.zeros(0, dtype=np.int64)
+    # Sorted by (instant, path): two stable passes on small integers (radix sorts).
+    order = np.argsort(a_path.astype(np.int32), kind="stable")
+    order = order[np.argsort(a_at[order].astype(np.int32), kind="stable")]
+    a_at, a_path, a_leave, a_stream = a_at[order], a_path[order], a_leave[order], a_stream[order]
+    key = a_at * n_paths + a_path
+    first = np.r_[0, np.flatnonzero(np.diff(key)) + 1] if key.size else np.zeros(0, dtype=int)
+    rank = np.arange(key.size) - np.repeat(first, np.diff(np.r_[first, key.size]))
+    return LossDraws(grid, census_index, n_paths, seed, a_at, a_path, a_leave, a_stream,
+                     rank.astype(np.int64), booked_in, tuple(s.name for s in streams))
+
+
+def _grid_clock(booked: Any, streams: Sequence[Any], census_at: FloatArray, grid: FloatArray
+                ) -> FloatArray:
+    """The newcomers' clock time at each grid instant, read off the streams' and bookings'
+    ``clock`` matrices (time from each slot or admission to each census instant): anchored at
+    the last census instant, a slot's time is that instant's minus the slot's clock to it,
+    and a census instant's is an early slot's plus its clock to that instant. Calendar days
+    where no clock is given."""
+    sources = [(np.asarray(s.slot_at, dtype=float), np.asarray(s.clock, dtype=float))
+               for s in streams if s.clock is not None and len(s.slot_at)]
+    if booked.clock is not None and len(booked.admit_at):
+        sources.append((np.asarray(booked.admit_at, dtype=float),
+                        np.asarray(booked.clock, dtype=float)))
+    if not sources or grid.size == 0:
+        return grid
+    h = census_at
+    tau = grid.copy()
+    tau_census = h.copy()
+    for at, clock in sources:
+        before = np.flatnonzero(at < h[0])
+        if before.size:
+            row = clock[before[0]]
+            tau_census = h[-1] + (row - row[-1])
+            break
+    for at, clock in sources:
+        inside = np.flatnonzero(at <= h[-1])
+        tau[np.searchsorted(grid, at[inside])] = tau_census[-1] - clock[inside, -1]
+    tau[np.searchsorted(grid, h)] = tau_census
+    return np.maximum.accumulate(tau)
+
+
+def interpolated_current(p_current: npt.ArrayLike, census_at: FloatArray, grid: FloatArray
+                         ) -> FloatArray:
+    """Current stays' probability of being in at the grid instants, log-linear in time
+    between as_of (certainly in) and the census instants (used where the stays' own curves on
+    the grid are not given)."""
+    p = np.asarray(p_current, dtype=float).reshape(-1, census_at.size)
+    if not p.shape[0]:
+        return np.zeros((0, grid.size))
+    x = np.r_[0.0, census_at]
+    logs = np.log(np.maximum(np.c_[np.ones(p.shape[0]), p], 1e-300))
+    return np.exp(np.stack([np.interp(grid, x, row) for row in logs]))
+
+
+def _arrivals(stream: Any, last: float, n_paths: int, rng: np.random.Generator
+              ) -> tuple[FloatArray, IntArray, IntArray] | None:
+    """One stream's arrivals before ``last`` on every path: the slots' instants, and each
+    arrival's slot and path.
+    A day's count is Poisson (given the day's gamma-distributed rate for a negative binomial
+    stream) and its arrivals fall in the day's slots in proportion to their means."""
+    slot_at = np.asarray(stream.slot_at, dtype=float)
+    keep = slot_at < last
+    slot_at = slot_at[keep]
+    mean = np.asarray(stream.slot_mean, dtype=float)[keep]
+    day = np.asarray(stream.slot_day, dtype=np.int64)[keep]
+    if not slot_at.size or mean.sum() <= 0:
+        return None
+    order = np.argsort(day, kind="stable")
+    slot_at, mean, day = slot_at[order], mean[order], day[order]
+    days, day_of = np.unique(day, return_inverse=True)
+    day_mean = np.bincount(day_of, weights=mean)
+    rate: FloatArray = np.broadcast_to(day_mean, (n_paths, days.size)).astype(float)
+    if stream.size is not None:
+        rate = rate * rng.gamma(stream.size, 1.0 / stream.size, size=(n_paths, days.size))
+    n = rng.poisson(rate)
+    total = int(n.sum())
+    if total == 0:
+        return None
+    on_path = np.repeat(np.repeat(np.arange(n_paths), days.size), n.ravel())
+    on_day = np.repeat(np.tile(np.arange(days.size), n_paths), n.ravel())
+    cumulative = np.cumsum(mean)
+    before = np.r_[0.0, np.cumsum(day_mean)][:-1]
+    slot = np.searchsorted(cumulative, before[on_day] + rng.random(total) * day_mean[on_day],
+                           side="right")
+    first = np.searchsorted(day_of, np.arange(days.size))
+    last_slot = np.r_[first[1:], day_of.size] - 1
+    slot = np.clip(slot, first[on_day], last_slot[on_day])
+    return slot_at, slot, on_path
+
+
+@dataclass(frozen=True)
+class Losses:
+    """Per census instant and path: the count with nobody turned away (``free``, shape
+    (K, paths)) and the arrivals turned away that would still be in, by stream (``lost``,
+    shape (K, paths, streams))."""
+
+    free: npt.NDArray[np.int64]
+    lost: npt.NDArray[np.int64]
+    stream_names: tuple[str, ...]
+
+
+def _grid_limits(draws: LossDraws, limits: Sequence[int | None]) -> FloatArray:
+    """The ceiling at each grid instant: that of the next census instant (inf: none)."""
+    per_census = np.array([np.inf if c is None else float(c) for c in limits])
+    nxt = np.searchsorted(draws.census_index, np.arange(draws.grid.size), side="left")
+    return per_census[np.minimum(nxt, per_census.size - 1)]
+
+
+def _counts(up: IntArray, down: IntArray, size: int, n_paths: int) -> npt.NDArray[np.int32]:
+    """(size, paths) running count of +1 at flat indices ``up`` and -1 at ``down`` (flat
+    index: grid index * n_paths + path)."""
+    cells = (size + 1) * n_paths
+    flat = np.bincount(up, minlength=cells).astype(np.int32)
+    if down.size:
+        flat -= np.bincount(down, minlength=cells).astype(np.int32)
+    return np.cumsum(flat.reshape(size + 1, n_paths), axis=0, dtype=np.int32)[:size]
+
+
+def losses(draws: LossDraws, p_grid: npt.ArrayLike, limits: Sequence[int | None]) -> Losses:
+    """Follow every path with arrivals turned away at ``limits`` (one per census instant);
+    ``p_grid`` (stays, grid) is each current stay's probability of being in at each grid
+    instant."""
+    size, n = draws.grid.size, draws.n_paths
+    p = np.asarray(p_grid, dtype=float).reshape(-1, size)
+    p = np.minimum.accumulate(p, axis=1)          # in at t only if in before
+    uniform = np.random.default_rng([draws.seed, p.shape[0]]).random((p.shape[0], n))
+    # A stay is in at grid instants 0 .. gone-1 (U < p(t)).
+    gone = np.array([np.searchsorted(-row, -u, side="left") for row, u in zip(p, uniform,
+                                                                                strict=True)],
+                    dtype=np.int64).reshape(p.shape[0], n)
+    cols = np.arange(n)
+    current = p.shape[0] - _counts((gone * n + cols[None, :]).ravel(),
+                                   np.zeros(0, dtype=np.int64), size, n)
+    fixed = current + draws.booked_in
+    # Arrivals with nobody turned away: in from the instant after arrival until they leave.
+    free_in = _counts((draws.at + 1) * n + draws.path, draws.leave * n + draws.path, size, n)
+    ceiling = _grid_limits(draws, limits)
+    # Paths on which some arrival would find the unit full even with everyone admitted.
+    seen = fixed[draws.at, draws.path] + free_in[draws.at, draws.path] + draws.rank
+    touching = np.flatnonzero(np.bincount(draws.path[seen >= ceiling[draws.at]],
+                                          minlength=n))
+    admitted = np.ones(draws.at.size, dtype=bool)
+    if touching.size:
+        _follow(draws, fixed, ceiling, touching, admitted)
+    k_idx = draws.census_index
+    free = (fixed + free_in)[k_idx]
+    n_streams = len(draws.stream_names)
+    lost = np.zeros((k_idx.size, n, n_streams), dtype=np.int64)
+    away = np.flatnonzero(~admitted)
+    for k, g in enumerate(k_idx):
+        still = away[(draws.at[away] < g) & (draws.leave[away] > g)]
+        if still.size:
+            np.add.at(lost[k], (draws.path[still], draws.stream[still]), 1)
+    return Losses(free, lost, draws.stream_names)
+
+
+def _follow(draws: LossDraws, fixed: npt.NDArray[np.int64], ceiling: FloatArray,
+            touching: IntArray, admitted: npt.NDArray[np.bool_]) -> None:
+    """Admit the arrivals of the ``touching`` paths in time order while there is room; mark
+    the others in ``admitted`` (in place)."""
+    n_t = touching.size
+    position = np.full(draws.n_paths, -1, dtype=np.int64)
+    position[touching] = np.arange(n_t)
+    mine = np.flatnonzero(position[draws.path] >= 0)
+    at, pos = draws.at[mine], position[draws.path[mine]]
+    rank, leave = draws.rank[mine], draws.leave[mine]
+    bounds = np.searchsorted(at, np.arange(draws.grid.size + 1))
+    inside = np.zeros(n_t, dtype=np.int64)          # admitted arrivals in, per touching path
+    leaving = np.zeros((draws.grid.size + 1, n_t), dtype=np.int64)
+    fixed_t = fixed[:, touching]
+    for g in range(draws.grid.size):
+        if g % 24 == 0:
+            checkpoint()
+        inside -= leaving[g]
+        lo, hi = bounds[g], bounds[g + 1]
+        if lo == hi:
+            continue
+        who = pos[lo:hi]
+        room = ceiling[g] - fixed_t[g, who] - inside[who]
+        ok = rank[lo:hi] < room
+        if not ok.all():
+            admitted[mine[lo:hi][~ok]] = False
+        inside += np.bincount(who[ok], minlength=n_t)
+        np.add.at(leaving, (leave[lo:hi][ok], who[ok]), 1)
+
+
+def corrected_pmf(exact: npt.NDArray[np.float64], free: npt.NDArray[np.int64],
+                  lost_total: npt.NDArray[np.int64], limit: int | None
+                  ) -> npt.NDArray[np.float64]:
+    """The exact pmf with nobody turned away, corrected to arrivals turned away by the paths
+    (module docstring): at or below ``limit`` the exact pmf plus the paths' mean change of the
+    indicator, above it the paths' share; clipped at zero and renormalised."""
+    n = free.size
+    if not lost_total.any() and (limit is None or exact.size <= limit + 1):
+        return exact                     # no path turned anyone away: the exact answer
+    kept = free - lost_total
+    width = max(exact.size, int(free.max(initial=0)) + 1)
+    pmf = np.zeros(width)
+    pmf[: exact.size] = exact
+    moved = lost_total > 0
+    if moved.any():
+        pmf -= np.bincount(free[moved], minlength=width)[:width] / n
+        pmf += np.bincount(kept[moved], minlength=width)[:width] / n
+    if limit is not None and width > limit + 1:
+        pmf[limit + 1:] = np.bincount(kept, minlength=width)[limit + 1:width] / n
+    pmf = np.clip(pmf, 0.0, None)
+    nonzero = np.flatnonzero(pmf > 0)
+    pmf = pmf[: int(nonzero[-1]) + 1] if nonzero.size else np.ones(1)
+    return pmf / pmf.sum()
