@@ -89,8 +89,10 @@ def verdict(option: DayOption, levels: AlertLevels,
     head = "Fits, but" if level == "warning" else "Does not fit well:"
     better = next((a for a in alternatives if a.day != option.day
                    and _RANK[a.worst(levels)[0]] < _RANK[level]), None)
+    # "Better" means a lower level: days at the same level may still differ a little in
+    # their figures (the best days list them), but none of them avoids this level.
     tail = (f" Consider {day_label(better.day)}." if better is not None
-            else " No day near it is better.")
+            else f" Every day near it reaches the {level} level too.")
     return Verdict(level, f"{head} {what}.{tail}", night.name,
                    None if better is None else better.day)
 

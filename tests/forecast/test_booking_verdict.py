@@ -74,7 +74,8 @@ def test_no_better_day_is_said_plainly() -> None:
     requested = option(MON, 0.8, (0.09, 0.12))
     same = option(MON + timedelta(days=1), 0.9, (0.15, 0.16))
     answer = verdict(requested, LEVELS, [same, requested])
-    assert answer.alternative is None and answer.text.endswith("No day near it is better.")
+    assert answer.alternative is None
+    assert answer.text.endswith("Every day near it reaches the warning level too.")
 
 
 def test_best_days_are_future_admission_days_near_the_request_in_date_order() -> None:
