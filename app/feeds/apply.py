@@ -36,9 +36,20 @@ from __future__ import annotations
 from collections.abc import Iterable
 from dataclasses import dataclass, field
 from datetime import UTC, datetime, timedelta
-from typing import Any, Literal
+from types import SimpleNamespace
+from typing import Any, Literal, cast
 
-from sqlalchemy import delete, func, select
+from sqlalchemy import (
+    Connection,
+    CursorResult,
+    Table,
+    bindparam,
+    delete,
+    func,
+    insert,
+    select,
+    update,
+)
 from sqlalchemy.orm import Session
 
 from app import bounds, score_names
@@ -51,6 +62,7 @@ from app.feeds.events import (
     events_to_json,
     stay_id_for,
 )
+from app.feeds.known import UNITS
 from app.feeds.mapping import KNOWN_SCORES, FeedMapping
 from app.ingest.importer import OUTCOMES
 from app.store.audit import jsonable
@@ -62,9 +74,9 @@ from app.store.models import (
     ImportBatch,
     Observation,
     Stay,
-    Unit,
 )
 from app.store.models import FeedMessage as FeedMessageRow
+from app.timeutil import as_utc
 
 Status = Literal["applied", "duplicate", "ignored", "dead_letter", "refused"]
 STORED_OUTCOMES = ("applied", "ignored", "dead_letter")
@@ -90,6 +102,54 @@ class ApplyOutcome:
         return "AA" if status in ("applied", "ignored", "duplicate") else "AE"
 
 
+_STAYS = cast(Table, Stay.__table__)
+_FEED_STAYS = cast(Table, FeedStay.__table__)
+# A visit's stays, each with its feed row's known-at time, read as plain rows: a message
+# changes them with statements of its own and keeps its copies (``_StayRow``) in step.
+_VISIT_STAYS = (select(*_STAYS.c, _FEED_STAYS.c.known_at.label("feed_known_at"))
+                .join_from(_STAYS, _FEED_STAYS, _FEED_STAYS.c.stay_id == _STAYS.c.stay_id)
+                .where(_FEED_STAYS.c.visit == bindparam("visit"))
+                .order_by(_STAYS.c.admitted_at))
+# Set the columns named in their parameters (besides ``b_stay_id``).
+_UPDATE_STAY = update(_STAYS).where(_STAYS.c.stay_id == bindparam("b_stay_id"))
+_UPDATE_FEED_STAY = update(_FEED_STAYS).where(_FEED_STAYS.c.stay_id == bindparam("b_stay_id"))
+_PENDING_OF_VISITS = (select(FeedDeadLetter.id)
+                      .where(FeedDeadLetter.resolved_at.is_(None),
+                             FeedDeadLetter.visit.in_(bindparam("visits", expanding=True)))
+                      .order_by(FeedDeadLetter.id))
+_MESSAGES = cast(Table, FeedMessageRow.__table__)
+_INSERT_MESSAGE = insert(_MESSAGES)
+_INSERT_BATCH = insert(cast(Table, ImportBatch.__table__))
+_INSERT_AUDIT = insert(cast(Table, AuditEvent.__table__))
+_INSERT_STAY = insert(_STAYS)
+_INSERT_FEED_STAY = insert(_FEED_STAYS)
+_FIND_MESSAGE = select(FeedMessageRow.id, FeedMessageRow.outcome, FeedMessageRow.received_at
+                       ).where(FeedMessageRow.source == bindparam("source"),
+                               FeedMessageRow.control_id == bindparam("control_id"))
+# Sets the columns named in its parameters (besides ``message_id``).
+_UPDATE_MESSAGE = update(_MESSAGES).where(_MESSAGES.c.id == bindparam("message_id"))
+_COUNT_REPEAT = update(_MESSAGES).where(_MESSAGES.c.id == bindparam("message_id")).values(
+    repeats=_MESSAGES.c.repeats + 1)
+
+
+def new_id(result: CursorResult[Any]) -> int:
+    """The key of the row a single-row INSERT made."""
+    key = result.inserted_primary_key
+    assert key is not None
+    return int(key[0])
+
+
+class _StayRow(SimpleNamespace):
+    """A stay as read by ``_VISIT_STAYS`` (every column of ``stay``, and ``feed_known_at``)."""
+
+    stay_id: str
+    unit: str
+    admitted_at: datetime
+    discharged_at: datetime | None
+    to_unit: str | None
+    feed_known_at: datetime
+
+
 class _Refused(Exception):
     def __init__(self, reason: str):
         super().__init__(reason)
@@ -106,23 +166,27 @@ def apply_message(session: Session, message: FeedMessage, *, received_at: dateti
                   mapping: FeedMapping, actor: str = "feed") -> ApplyOutcome:
     """Apply ``message``; flush only (the caller commits, then acknowledges)."""
     received_at = received_at.astimezone(UTC)
-    row = session.scalar(select(FeedMessageRow).where(
-        FeedMessageRow.source == message.source[:100],
-        FeedMessageRow.control_id == message.control_id[:200]))
-    if row is not None and row.outcome in STORED_OUTCOMES:
-        return _repeat(session, row)
-    if row is None:
-        row = FeedMessageRow(kind=message.kind, source=message.source[:100],
-                             control_id=message.control_id[:200])
-        session.add(row)
-    row.message_type = message.message_type[:20]
-    row.digest = message.digest
-    row.sent_at = message.sent_at
-    row.received_at = received_at
-    row.outcome, row.reason, row.unmapped = "refused", None, None
-    session.flush()  # a write before the savepoint: SQLite's transaction is open from here
+    source, control_id = message.source[:100], message.control_id[:200]
+    # Statements here are built once (``_FIND_MESSAGE``, ...) and written without the ORM's
+    # unit of work where nothing reads the rows back as objects: a message is a dozen
+    # statements, and building and flushing them was most of its time.
+    session.flush()  # (nothing, mostly) the statements below go round the unit of work
+    conn = session.connection()
+    found = conn.execute(_FIND_MESSAGE, {"source": source, "control_id": control_id}).first()
+    if found is not None and found.outcome in STORED_OUTCOMES:
+        return _repeat(session, found)
+    values = {"message_type": message.message_type[:20], "digest": message.digest,
+              "sent_at": message.sent_at, "received_at": received_at, "outcome": "refused",
+              "reason": None, "unmapped": None}
+    # A write before the savepoint: SQLite's transaction is open from here.
+    if found is None:
+        message_id = new_id(conn.execute(_INSERT_MESSAGE, {
+            "kind": message.kind, "source": source, "control_id": control_id, **values}))
+    else:  # refused before: taken again, corrected
+        message_id = int(found.id)
+        conn.execute(_UPDATE_MESSAGE, {"message_id": message_id, **values})
 
-    work = _Work(session, mapping, actor, now=received_at, message_id=row.id)
+    work = _Work(session, mapping, actor, now=received_at, message_id=message_id)
     known_at = message.known_at(received_at)
     try:
         if known_at > bounds.latest_event(received_at):
@@ -131,45 +195,45 @@ def apply_message(session: Session, message: FeedMessage, *, received_at: dateti
         with session.begin_nested():
             status = work.apply_all(message, known_at)
     except _Refused as refused:
-        row.reason = refused.reason[:500]
-        row.unmapped = work.unmapped_json()
-        session.flush()
-        return ApplyOutcome("refused", refused.reason, row.id)
+        conn.execute(_UPDATE_MESSAGE, {
+            "message_id": message_id, "reason": refused.reason[:500],
+            "unmapped": work.unmapped_json()})
+        return ApplyOutcome("refused", refused.reason, message_id)
     except _DeadLetter as dead:
-        row.outcome, row.reason = "dead_letter", dead.reason[:500]
-        row.unmapped = work.unmapped_json()
+        conn.execute(_UPDATE_MESSAGE, {
+            "message_id": message_id, "outcome": "dead_letter", "reason": dead.reason[:500],
+            "unmapped": work.unmapped_json()})
         session.add(FeedDeadLetter(
-            message_id=row.id, visit=_first_visit(message.events), reason=dead.reason[:500],
+            message_id=message_id, visit=_first_visit(message.events),
+            reason=dead.reason[:500],
             events={"events": events_to_json(message.events), "kind": message.kind},
-            text=message.text, created_at=received_at,
+            text=message.kept_text(), created_at=received_at,
             expires_at=received_at + timedelta(days=mapping.keep_days)))
         session.flush()
-        return ApplyOutcome("dead_letter", dead.reason, row.id)
-    row.outcome = status
-    row.reason = work.note
-    row.unmapped = work.unmapped_json()
-    row.batch_id = work.batch.id if work.batch is not None else None
-    session.flush()
+        return ApplyOutcome("dead_letter", dead.reason, message_id)
+    conn.execute(_UPDATE_MESSAGE, {
+        "message_id": message_id, "outcome": status, "reason": work.note,
+        "unmapped": work.unmapped_json(), "batch_id": work.batch})
     _retry_visits(session, mapping, actor, work.changed_visits, now=received_at)
-    return ApplyOutcome(status, work.note, row.id)
+    return ApplyOutcome(status, work.note, message_id)
 
 
 def repeat_of(session: Session, source: str, control_id: str) -> ApplyOutcome | None:
     """The answer to a (source, control id) already received and not refused, counting the
     repeat; None when it is new (or was refused, so it may come again corrected)."""
-    row = session.scalar(select(FeedMessageRow).where(
-        FeedMessageRow.source == source[:100], FeedMessageRow.control_id == control_id[:200]))
-    if row is None or row.outcome not in STORED_OUTCOMES:
+    found = session.execute(_FIND_MESSAGE, {"source": source[:100],
+                                            "control_id": control_id[:200]}).first()
+    if found is None or found.outcome not in STORED_OUTCOMES:
         return None
-    return _repeat(session, row)
+    return _repeat(session, found)
 
 
-def _repeat(session: Session, row: FeedMessageRow) -> ApplyOutcome:
-    row.repeats += 1
-    session.flush()
-    return ApplyOutcome("duplicate", f"already received on {row.received_at:%Y-%m-%d %H:%M}"
-                        f" UTC ({row.outcome.replace('_', ' ')})", row.id,
-                        original=row.outcome)  # type: ignore[arg-type]
+def _repeat(session: Session, found: Any) -> ApplyOutcome:
+    """Count a repeat of the message ``found`` (a ``_FIND_MESSAGE`` row)."""
+    session.connection().execute(_COUNT_REPEAT, {"message_id": found.id})
+    return ApplyOutcome("duplicate", f"already received on {found.received_at:%Y-%m-%d %H:%M}"
+                        f" UTC ({found.outcome.replace('_', ' ')})", found.id,
+                        original=found.outcome)
 
 
 def record_refusal(session: Session, *, kind: str, source: str, control_id: str,
@@ -252,7 +316,7 @@ def _try_dead_letter(session: Session, mapping: FeedMapping, actor: str, dead_id
     row.outcome = status
     row.reason = f"applied from the dead letters on {now:%Y-%m-%d %H:%M} UTC"
     row.unmapped = work.unmapped_json()
-    row.batch_id = work.batch.id if work.batch is not None else None
+    row.batch_id = work.batch
     session.flush()
     done = Replayed(dead.id, row.id, status, row.reason)
     if log is not None:
@@ -268,9 +332,9 @@ def _retry_visits(session: Session, mapping: FeedMapping, actor: str, visits: se
     for _ in range(MAX_RETRY_ROUNDS):
         if not pending:
             return
-        ids = session.scalars(select(FeedDeadLetter.id).where(
-            FeedDeadLetter.resolved_at.is_(None), FeedDeadLetter.visit.in_(sorted(pending)))
-            .order_by(FeedDeadLetter.id)).all()
+        session.flush()
+        ids = session.connection().execute(
+            _PENDING_OF_VISITS, {"visits": sorted(pending)}).scalars().all()
         pending = set()
         for dead_id in ids:
             dead = session.get(FeedDeadLetter, dead_id)
@@ -293,21 +357,31 @@ class _Work:
     actor: str
     now: datetime
     message_id: int
-    batch: ImportBatch | None = None
+    batch: int | None = None  # the id of the message's import batch, once it has one
     note: str | None = None
     changed_visits: set[str] = field(default_factory=set)
     unmapped: dict[str, set[str]] = field(default_factory=dict)
-    _units: set[str] | None = None
+    _units: frozenset[str] | None = None
     _score_names: set[str] | None = None
     # The stays of each visit read so far (forgotten when one is added or deleted).
-    _visits: dict[str, list[Stay]] = field(default_factory=dict)
+    _visits: dict[str, list[_StayRow]] = field(default_factory=dict)
     _message: FeedMessage | None = None
     known_at: datetime = datetime.min.replace(tzinfo=UTC)
+    conn: Connection = field(init=False)  # the session's, for the statements built once
+
+    def __post_init__(self) -> None:
+        self.conn = self.session.connection()
 
     # -- the message ---------------------------------------------------------------------
 
     def apply_all(self, message: FeedMessage, known_at: datetime) -> Status:
+        """Apply the events; the caller runs this inside ``session.begin_nested()``."""
         self._message, self.known_at = message, known_at
+        # The session starts its savepoint only when asked for the connection inside it:
+        # ask now, as the statements below go to the connection straight (and must be in
+        # the savepoint, or a refusal would not take them back).
+        self.conn = self.session.connection()
+        assert self.session.in_nested_transaction()
         if not message.events:
             raise _Refused("the message holds no event Morrow uses")
         results = []
@@ -330,9 +404,9 @@ class _Work:
 
     # -- lookups -------------------------------------------------------------------------
 
-    def known_units(self) -> set[str]:
-        if self._units is None:
-            self._units = set(self.session.scalars(select(Unit.code)))
+    def known_units(self, *, fresh: bool = False) -> frozenset[str]:
+        if self._units is None or fresh:
+            self._units = UNITS.codes(self.session, fresh=fresh)
         return self._units
 
     def unit(self, location: str | None) -> str | None:
@@ -340,6 +414,9 @@ class _Work:
         if not location or self.mapping.is_ignored(location):
             return None
         unit = self.mapping.unit_for(location, self.known_units())
+        if unit is None or unit not in self.known_units():
+            # Not among the units remembered: perhaps one added since (units.csv).
+            unit = self.mapping.unit_for(location, self.known_units(fresh=True))
         if unit is None:
             self._unmapped("locations", location)
             raise _DeadLetter(f"point of care {location!r} is not mapped to a Morrow unit")
@@ -358,13 +435,13 @@ class _Work:
         except bounds.OutOfBounds as exc:
             raise _Refused(str(exc)) from None
 
-    def visit_stays(self, visit: str) -> list[Stay]:
+    def visit_stays(self, visit: str) -> list[_StayRow]:
         cached = self._visits.get(visit)
         if cached is not None:
             return list(cached)
-        stays = list(self.session.scalars(
-            select(Stay).join(FeedStay, FeedStay.stay_id == Stay.stay_id)
-            .where(FeedStay.visit == visit).order_by(Stay.admitted_at)))
+        self.session.flush()  # (nothing, mostly) scores added as objects
+        stays = [_StayRow(**row._mapping) for row in
+                 self.conn.execute(_VISIT_STAYS, {"visit": visit})]
         self._visits[visit] = stays
         return list(stays)
 
@@ -409,23 +486,24 @@ class _Work:
             message = self._message
             assert message is not None
             only_scores = all(isinstance(e, ScoreEvent) for e in message.events)
-            self.batch = ImportBatch(
-                kind="observations" if only_scores else message.kind,
-                filename=f"{message.kind} {message.message_type} {message.source} "
-                         f"{message.control_id}"[:255],
-                sha256=message.digest, rows=len(message.events), actor=self.actor[:100])
-            self.session.add(self.batch)
-            self.session.flush()
-        return self.batch.id
+            self.batch = new_id(self.conn.execute(_INSERT_BATCH, {
+                "kind": "observations" if only_scores else message.kind,
+                "filename": f"{message.kind} {message.message_type} {message.source} "
+                            f"{message.control_id}"[:255],
+                "sha256": message.digest, "rows": len(message.events),
+                "actor": self.actor[:100]}))
+        return self.batch
 
     def audit(self, action: str, stay_id: str, before: dict[str, Any] | None,
               after: dict[str, Any] | None) -> None:
-        self.session.add(AuditEvent(actor=self.actor[:100], action=action, entity="stay",
-                                    entity_id=stay_id, before=jsonable(before),
-                                    after=jsonable(after), batch_id=self.batch_id()))
+        batch_id = self.batch_id()
+        self.conn.execute(_INSERT_AUDIT, {
+            "actor": self.actor[:100], "action": action, "entity": "stay",
+            "entity_id": stay_id, "before": jsonable(before), "after": jsonable(after),
+            "batch_id": batch_id})
 
     def insert_stay(self, event: StayEvent, unit: str, admitted_at: datetime,
-                    values: dict[str, Any], *, from_unit: str | None) -> Stay:
+                    values: dict[str, Any], *, from_unit: str | None) -> None:
         stay_id = stay_id_for(event.visit, admitted_at)
         # Ids are made from the visit: only a stay of the same visit can hold this one.
         clash = next((s for s in self.visit_stays(event.visit) if s.stay_id == stay_id), None)
@@ -438,20 +516,20 @@ class _Work:
                   "specialty": values.get("specialty"), "source": values.get("source"),
                   "patient": event.patient, "from_unit": from_unit, "to_unit": None,
                   "booking_id": values.get("booking_id")}
-        stay = Stay(stay_id=stay_id, batch_id=self.batch_id(), discharge_source=None, **fields)
-        self.session.add(stay)
-        self.session.flush()
-        self.session.add(FeedStay(stay_id=stay_id, visit=event.visit, known_at=self.known_at,
-                                  message_id=self.message_id))
+        batch_id = self.batch_id()
+        conn = self.conn
+        conn.execute(_INSERT_STAY, {"stay_id": stay_id, "batch_id": batch_id,
+                                    "discharge_source": None, **fields})
+        conn.execute(_INSERT_FEED_STAY, {"stay_id": stay_id, "visit": event.visit,
+                                         "known_at": self.known_at,
+                                         "message_id": self.message_id})
         self._visits.pop(event.visit, None)
         self.audit("insert", stay_id, None, fields)
         self.changed_visits.add(event.visit)
-        return stay
 
-    def change_stay(self, stay: Stay, visit: str, values: dict[str, Any], *,
+    def change_stay(self, stay: _StayRow, visit: str, values: dict[str, Any], *,
                     only_if_newer: bool) -> bool:
-        link = self.session.get(FeedStay, stay.stay_id)
-        if only_if_newer and link is not None and self.known_at < link.known_at:
+        if only_if_newer and self.known_at < stay.feed_known_at:
             return False  # an older message arriving late: what is stored is newer
         changed = {k: v for k, v in values.items() if getattr(stay, k) != v}
         if not changed:
@@ -461,17 +539,19 @@ class _Work:
             raise _Refused(f"discharge at {changed['discharged_at']:%Y-%m-%d %H:%M} UTC is "
                            f"before the admission at {stay.admitted_at:%Y-%m-%d %H:%M} UTC")
         before = {k: getattr(stay, k) for k in changed}
-        for k, v in changed.items():
+        conn = self.conn
+        conn.execute(_UPDATE_STAY, {"b_stay_id": stay.stay_id, **changed})
+        known_at = max(as_utc(stay.feed_known_at), self.known_at)
+        conn.execute(_UPDATE_FEED_STAY, {"b_stay_id": stay.stay_id, "known_at": known_at,
+                                         "message_id": self.message_id})
+        for k, v in changed.items():  # the copy this message goes on with
             setattr(stay, k, v)
-        if link is not None:
-            link.known_at = max(link.known_at, self.known_at)
-            link.message_id = self.message_id
+        stay.feed_known_at = known_at
         self.audit("update", stay.stay_id, before, changed)
         self.changed_visits.add(visit)
-        self.session.flush()
         return True
 
-    def delete_stay(self, stay: Stay, visit: str) -> None:
+    def delete_stay(self, stay: _StayRow, visit: str) -> None:
         before = {k: getattr(stay, k) for k in ("unit", "admitted_at", "discharged_at",
                                                  *COVARIATES, "patient", "from_unit", "to_unit")}
         scores = self.session.scalar(select(func.count()).select_from(Observation)
@@ -480,7 +560,7 @@ class _Work:
         self.session.execute(delete(Observation).where(Observation.stay_id == stay.stay_id))
         self.session.execute(delete(CensusRow).where(CensusRow.stay_id == stay.stay_id))
         self.session.execute(delete(FeedStay).where(FeedStay.stay_id == stay.stay_id))
-        self.session.delete(stay)
+        self.session.execute(delete(Stay).where(Stay.stay_id == stay.stay_id))
         self._visits.pop(visit, None)
         self.audit("delete", stay.stay_id, before, None)
         self.changed_visits.add(visit)
@@ -681,7 +761,7 @@ class _Work:
             applied = True
         return "applied" if applied else "ignored"
 
-    def _add_score(self, stay: Stay, name: str, event: ScoreEvent, observed: datetime) -> None:
+    def _add_score(self, stay: _StayRow, name: str, event: ScoreEvent, observed: datetime) -> None:
         recorded = max(self.known_at, observed)
         latest = self.session.execute(
             select(Observation.value, Observation.withdrawn).where(

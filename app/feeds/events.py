@@ -40,7 +40,8 @@ All datetimes are aware and in UTC.
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from collections.abc import Callable
+from dataclasses import dataclass, field
 from datetime import UTC, datetime
 from typing import Literal
 
@@ -140,7 +141,8 @@ class FeedMessage:
     known-at time (MSH-7, Bundle.timestamp) or None (then the receipt time counts).
     ``digest`` is the SHA-256 of the message as received (kept instead of its text).
     ``text`` is the message with names, addresses and dates of birth blanked and identifiers
-    replaced by their keyed hash: kept only when the message becomes a dead letter.
+    replaced by their keyed hash: kept only when the message becomes a dead letter (so a
+    reader may give ``make_text`` instead, which makes it only then: ``kept_text``).
     """
 
     kind: FeedKind
@@ -151,9 +153,16 @@ class FeedMessage:
     events: tuple[FeedEvent, ...] = ()
     sent_at: datetime | None = None
     text: str | None = None
+    make_text: Callable[[], str] | None = field(default=None, compare=False, repr=False)
 
     def __post_init__(self) -> None:
         _aware("sent_at", self.sent_at)
+
+    def kept_text(self) -> str | None:
+        """The text a dead letter keeps (``text``, else made by ``make_text``)."""
+        if self.text is None and self.make_text is not None:
+            return self.make_text()
+        return self.text
 
     def known_at(self, received_at: datetime) -> datetime:
         """The instant the message's content counts as known: sent time, else receipt."""

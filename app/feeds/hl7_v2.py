@@ -246,7 +246,8 @@ def translate(text: str, *, pseudonymiser: Pseudonymiser, tz: ZoneInfo,
                          ERR_MESSAGE_TYPE)
     return FeedMessage(kind="hl7v2", source=header.source, control_id=header.control_id,
                        message_type=f"{kind}^{trigger}", digest=digest, events=events,
-                       sent_at=sent_at, text=pseudonymised_text(message, pseudonymiser))
+                       sent_at=sent_at,
+                       make_text=lambda: pseudonymised_text(message, pseudonymiser))
 
 
 def _visit(message: hl7.Message, pseudonymiser: Pseudonymiser) -> tuple[str, str | None]:

@@ -71,10 +71,14 @@ class Pseudonymiser:
     def __repr__(self) -> str:
         return "Pseudonymiser(<secret>)"
 
+    def __post_init__(self) -> None:
+        # Keyed once; each identifier hashes a copy (the same digest as hmac.new each time).
+        object.__setattr__(self, "_keyed", hmac.new(self.secret, digestmod=hashlib.sha256))
+
     def _key(self, domain: str, value: str, length: int) -> str:
-        digest = hmac.new(self.secret, f"{domain}\x1f{value.strip()}".encode(),
-                          hashlib.sha256).hexdigest()
-        return digest[:length]
+        mac = self._keyed.copy()  # type: ignore[attr-defined]
+        mac.update(f"{domain}\x1f{value.strip()}".encode())
+        return mac.hexdigest()[:length]
 
     def patient(self, identifier: str, authority: str = "") -> str:
         """Key of a person identifier (with its assigning authority, when given)."""

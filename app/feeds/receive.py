@@ -23,6 +23,7 @@ from sqlalchemy.orm import Session
 from app.feeds import hl7_v2
 from app.feeds.apply import ApplyOutcome, apply_message, record_refusal, repeat_of
 from app.feeds.census import CensusClock
+from app.feeds.known import UNITS
 from app.feeds.mapping import FeedMapping
 from app.feeds.pseudonym import Pseudonymiser
 from app.store.retry import run_transaction
@@ -88,6 +89,7 @@ def receive_hl7(url: str, text: str, *, mapping: FeedMapping, pseudonymiser: Pse
     except Exception as exc:
         if census is not None:
             census.forget()  # the sender must get an answer; the message is not stored
+        UNITS.forget()  # read again what the next message relies on
         log.exception("HL7 message %s could not be stored", header.control_id[:40])
         reason = f"Morrow could not store the message ({type(exc).__name__}); send it again"
         return Receipt("failed", hl7_v2.build_ack(header, "AE", text=reason,
