@@ -16,17 +16,7 @@ from datetime import UTC
 from pathlib import Path
 from typing import Any
 
-EXIT_OK, EXIT_ERROR, EXIT_BAD_INPUT = 0, 1, 2
-
-
-def _mapping(path: str | None) -> Any:
-    from app.feeds.mapping import MappingError, load_mapping
-
-    try:
-        return load_mapping(path)
-    except MappingError as exc:
-        print(f"error: {exc}", file=sys.stderr)
-        return None
+from app.cli.feeds import EXIT_BAD_INPUT, EXIT_ERROR, EXIT_OK, _mapping
 
 
 def cmd_import_fhir(args: argparse.Namespace) -> int:
