@@ -98,3 +98,14 @@ def demo_db(migrated_template: Path, tmp_path_factory: pytest.TempPathFactory) -
         load_demo(session, DEMO_DIR, tz=UTC_ZONE, shift=False)
     _settle(url)
     return url
+
+
+@pytest.fixture
+def utc_site(monkeypatch: pytest.MonkeyPatch) -> Iterator[None]:
+    """The site's clock in UTC for the app's settings (read once and cached)."""
+    from app.config import get_settings
+
+    monkeypatch.setenv("MORROW_TIMEZONE", "UTC")
+    get_settings.cache_clear()
+    yield
+    get_settings.cache_clear()

@@ -11,7 +11,6 @@ from __future__ import annotations
 import json
 import shutil
 import time
-from collections.abc import Iterator
 from datetime import UTC, date, datetime, timedelta
 from pathlib import Path
 
@@ -33,12 +32,7 @@ PASSWORD = "a long test password"
 DEMO_NOW = datetime(2026, 11, 30, 8, 0, tzinfo=UTC)
 
 
-@pytest.fixture(autouse=True)
-def utc_site(monkeypatch: pytest.MonkeyPatch) -> Iterator[None]:
-    monkeypatch.setenv("MORROW_TIMEZONE", "UTC")
-    get_settings.cache_clear()
-    yield
-    get_settings.cache_clear()
+pytestmark = pytest.mark.usefixtures("utc_site")
 
 
 def test_census_counts_by_hand(db_url: str) -> None:

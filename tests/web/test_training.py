@@ -12,7 +12,6 @@ from __future__ import annotations
 import shutil
 import threading
 import time
-from collections.abc import Iterator
 from datetime import UTC, datetime, timedelta
 from pathlib import Path
 
@@ -31,19 +30,11 @@ from app.web.app import create_app
 from tests.conftest import UTC_ZONE
 from tests.security.fixtures import form_csrf, make_user, signed_in_client
 
-pytestmark = pytest.mark.both_databases
+pytestmark = [pytest.mark.both_databases, pytest.mark.usefixtures("utc_site")]
 
 PASSWORD = "a long test password"
 UNIT = "U-TR"
 T0 = datetime(2026, 3, 2, 8, 0, tzinfo=UTC)
-
-
-@pytest.fixture(autouse=True)
-def utc_site(monkeypatch: pytest.MonkeyPatch) -> Iterator[None]:
-    monkeypatch.setenv("MORROW_TIMEZONE", "UTC")
-    get_settings.cache_clear()
-    yield
-    get_settings.cache_clear()
 
 
 def seeded(url: str) -> str:
