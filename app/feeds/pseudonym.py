@@ -56,7 +56,11 @@ def load_secret(path: Path | None = None) -> bytes:
     if mode & (stat.S_IRWXG | stat.S_IRWXO):
         raise SecretError(f"{file}: the feed secret is readable by others; "
                           f"run: chmod 600 {file}")
-    text = file.read_text(encoding="ascii").strip()
+    try:
+        text = file.read_text(encoding="ascii").strip()
+    except UnicodeDecodeError:
+        raise SecretError(f"{file}: the feed secret must be text (letters and digits, as "
+                          "Morrow writes it: 64 hexadecimal characters)") from None
     if len(text) < 32:
         raise SecretError(f"{file}: the feed secret is shorter than 32 characters")
     return text.encode("ascii")

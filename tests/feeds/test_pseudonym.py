@@ -35,6 +35,14 @@ def test_a_secret_others_can_read_is_refused(tmp_path: Path) -> None:
         load_secret(path)
 
 
+def test_a_secret_that_is_not_text_is_refused_in_words(tmp_path: Path) -> None:
+    path = tmp_path / "feed_secret"
+    path.write_bytes(os.urandom(32) + b"\xef")  # raw bytes, as a hand-made file might hold
+    os.chmod(path, 0o600)
+    with pytest.raises(SecretError, match="must be text"):
+        load_secret(path)
+
+
 def test_keys_are_hmac_sha256_of_the_identifier_under_the_secret() -> None:
     secret = b"k" * 40
     keys = Pseudonymiser(secret)
