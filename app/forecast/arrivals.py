@@ -258,9 +258,7 @@ def train_arrivals(state: UnitState) -> dict[str, Any]:
         "elective": {
             "p_go_by_lead": _p_go_by_lead(state),
             "hour_profile": hourly_profile(admitted[elective].dt.hour).tolist(),
-            "unbooked_by_weekday_lead": _unbooked_rates(state),
-            "never_booked_by_weekday": _never_booked_rates(state),
-            "booking_hour_profile": _booking_hours(state).tolist(),
+            **_not_yet_booked(state),
         },
     }
 
@@ -292,11 +290,14 @@ def _p_go_by_lead(state: UnitState) -> list[float]:
     return out
 
 
-def _unbooked_rates(state: UnitState) -> list[list[float]]:
-    """[weekday][lead] mean elective admissions on a day ``lead`` days ahead not booked yet.
+def _not_yet_booked(state: UnitState) -> dict[str, Any]:
+    """The electives of the recent window that were not known in advance, per weekday:
 
-    An admission on day D counts for lead L when its booking was made on or after day D - L
-    (or it had no booking). Mean over the weeks of the recent window.
+    - ``unbooked_by_weekday_lead[w][L]``: mean admissions on a day ``L`` days ahead whose
+      booking was made on or after day D - L, or that had none (not yet booked then);
+    - ``never_booked_by_weekday[w]``: those with no booking at all;
+    - ``booking_hour_profile``: the share of their bookings made in each local clock hour,
+      to tell how much of a day's booking is still to come at the forecast's hour.
     """
     stays = state.stays
     first, last = _window(state, ELECTIVE_WINDOW_DAYS)
@@ -304,50 +305,24 @@ def _unbooked_rates(state: UnitState) -> list[list[float]]:
     admitted_day = _local(elective["admitted_at"], state).dt.date
     keep = (admitted_day >= first) & (admitted_day <= last)
     elective, admitted_day = elective.loc[keep], admitted_day.loc[keep]
-    booked = state.bookings.set_index("booking_id")["booked_at"]
-    booked_day = _local(elective["booking_id"].map(booked), state).dt.date
+    made = elective["booking_id"].map(state.bookings.set_index("booking_id")["booked_at"])
+    booked_day = _local(made, state).dt.date
     # No booking (NaT: pandas' missing time, which is also a ``date``) counts at every lead.
-    lead_of = [0 if pd.isna(b) else (a - b).days
-               for a, b in zip(admitted_day, booked_day, strict=True)]
-    weekdays = pd.Series([d.weekday() for d in admitted_day], index=elective.index)
-    n_days = np.bincount([(first + timedelta(days=i)).weekday()
-                          for i in range((last - first).days + 1)], minlength=7)
-    lead = np.asarray(lead_of, dtype=float)
-    out = []
-    for w in range(7):
-        on = (weekdays == w).to_numpy()
-        row = [float(((lead[on] <= L)).sum()) / max(int(n_days[w]), 1) for L in range(MAX_LEAD + 1)]
-        out.append(row)
-    return out
-
-
-def _recent_electives(state: UnitState) -> tuple[pd.DataFrame, pd.Series, date, date]:
-    stays = state.stays
-    first, last = _window(state, ELECTIVE_WINDOW_DAYS)
-    elective = stays.loc[stays["admission_type"] == "elective"]
-    admitted_day = _local(elective["admitted_at"], state).dt.date
-    keep = (admitted_day >= first) & (admitted_day <= last)
-    return elective.loc[keep], admitted_day.loc[keep], first, last
-
-
-def _never_booked_rates(state: UnitState) -> list[float]:
-    """[weekday] mean elective admissions with no booking at all (never known in advance)."""
-    elective, admitted_day, first, last = _recent_electives(state)
-    never = elective["booking_id"].isna().to_numpy()
+    lead = np.asarray([0 if pd.isna(b) else (a - b).days
+                       for a, b in zip(admitted_day, booked_day, strict=True)], dtype=float)
     weekdays = np.array([d.weekday() for d in admitted_day], dtype=int)
     n_days = np.bincount([(first + timedelta(days=i)).weekday()
                           for i in range((last - first).days + 1)], minlength=7)
-    counts = np.bincount(weekdays[never], minlength=7) if never.any() else np.zeros(7)
-    return [float(counts[w]) / max(int(n_days[w]), 1) for w in range(7)]
-
-
-def _booking_hours(state: UnitState) -> np.ndarray:
-    """Share of bookings made in each local clock hour (those of the recent window's
-    electives), to tell how much of a day's booking is still to come at the forecast's hour."""
-    elective, _, _, _ = _recent_electives(state)
-    booked = state.bookings.set_index("booking_id")["booked_at"]
-    made = elective["booking_id"].map(booked).dropna()
-    return hourly_profile(_local(made, state).dt.hour)
+    per_day = np.maximum(n_days, 1).astype(float)
+    never = elective["booking_id"].isna().to_numpy()
+    never_counts = np.bincount(weekdays[never], minlength=7)
+    return {
+        "unbooked_by_weekday_lead": [
+            [float((lead[weekdays == w] <= L).sum()) / per_day[w] for L in range(MAX_LEAD + 1)]
+            for w in range(7)],
+        "never_booked_by_weekday": [float(never_counts[w]) / per_day[w] for w in range(7)],
+        "booking_hour_profile": hourly_profile(_local(made.dropna(), state).dt.hour).tolist(),
+    }
 
 
 def _share_still_to_come(profile: list[float], local: datetime) -> float:

@@ -187,12 +187,11 @@ class BookedAdmissions:
         by_stay: dict[int, list[int]] = {}
         for j, stay in enumerate(self.stays):
             by_stay.setdefault(id(stay), []).append(j)
-        all_lags = self.lags(census_at) if self.stays else np.zeros((0, census_at.size))
-        calendar = census_at[None, :] - np.asarray(self.admit_at, dtype=float)[:, None]
+        all_lags = self.lags(census_at)  # negative exactly before admission
         for rows in by_stay.values():
             stay = self.stays[rows[0]]
             lags = all_lags[rows]
-            after = calendar[rows] >= 0
+            after = lags >= 0
             survival = _sf_once(stay, np.where(after, lags, 0.0))
             out[rows] = np.where(after, survival, 0.0) * np.asarray(self.p_go)[rows][:, None]
         return out
@@ -481,7 +480,7 @@ def draw_paths(
     h = np.asarray(census_at, dtype=float)
     stay_draws = rng.random((n_paths, n_stays)) if n_stays else np.zeros((n_paths, 0))
     counts = np.zeros((n_paths, h.size), dtype=np.int64)
-    booked_lags = booked.lags(h) if booked.stays else np.zeros((0, h.size))
+    booked_lags = booked.lags(h)
     for j, (g, a, stay) in enumerate(zip(booked.p_go, booked.admit_at, booked.stays,
                                          strict=True)):
         goes = rng.random(n_paths) < g

@@ -88,11 +88,6 @@ def release_engine(url: str) -> None:
         entry[0].dispose()
 
 
-def release_all_engines() -> None:
-    for url in list(_engines):
-        release_engine(url)
-
-
 @contextmanager
 def session_scope(url: str) -> Iterator[Session]:
     """The one place that commits: on success; rolls back on any error."""

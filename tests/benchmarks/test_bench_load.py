@@ -46,7 +46,7 @@ from app.forecast.service import train_model
 from app.store import db
 from app.store.models import Booking, ImportBatch, Observation, Stay
 from tests.conftest import DEMO_DIR, UTC_ZONE
-from tests.security.fixtures import make_user
+from tests.security.fixtures import make_user, sign_in_form
 from tests.security.test_workers import cpu_ticks, serve, worker_pids
 
 CLIENTS = 20
@@ -143,11 +143,7 @@ CSRF = re.compile(r'name="csrf_token" value="([^"]+)"')
 
 
 def sign_in(client: httpx.Client, username: str) -> str:
-    form = client.get("/signin")
-    token = CSRF.search(form.text)
-    assert token is not None
-    answer = client.post("/signin", data={"username": username, "password": PASSWORD,
-                                          "csrf_token": token.group(1), "next": "/"})
+    answer = sign_in_form(client, username, PASSWORD)
     assert answer.status_code == 303, answer.text
     page = client.get(f"/units/{UNIT}")
     assert page.status_code == 200

@@ -3,24 +3,20 @@ benchmarks (each client starts at its own place in the list)."""
 
 from __future__ import annotations
 
-import re
 import threading
 import time
 from collections.abc import Mapping, Sequence
 
 import httpx2
 
+from tests.security.fixtures import sign_in_form
 from tests.web.served import PASSWORD
 
 
 def signed_in_client(base: str, username: str = "viewer", timeout: float = 120.0
                      ) -> httpx2.Client:
     client = httpx2.Client(base_url=base, timeout=timeout)
-    form = client.get("/signin").text
-    token = re.search(r'name="csrf_token" value="([^"]+)"', form)
-    assert token is not None
-    client.post("/signin", data={"username": username, "password": PASSWORD,
-                                 "csrf_token": token.group(1)})
+    assert sign_in_form(client, username, PASSWORD).status_code == 303
     return client
 
 

@@ -29,11 +29,10 @@ from urllib.parse import parse_qs, urlsplit
 import httpx2 as httpx
 from sqlalchemy import func, select, text
 
-from app.ingest import import_file
 from app.store import db
 from app.store.models import AuditEvent, Booking, ImportBatch, Observation
-from tests.conftest import UTC_ZONE
-from tests.security.fixtures import make_user
+from tests.reliability.small_unit import unit_with_patients
+from tests.security.fixtures import make_user, sign_in_form
 
 TREE = Path(__file__).resolve().parents[2]  # the checkout these tests (and its app/) are in
 UNIT = "U-KILL"
@@ -52,13 +51,7 @@ def seed(url: str, writers: int = 1) -> None:
     """The unit, its current stays (admitted two days ago) and ``writers`` accounts of each
     kind (``crash.nurse``, ``crash.nurse1``, ...)."""
     admitted = (datetime.now(UTC) - timedelta(days=2)).replace(microsecond=0)
-    stays = "\n".join(f"S-K{i:02d},{UNIT},{admitted.isoformat()},emergency"
-                      for i in range(STAYS))
-    with db.session_scope(url) as session:
-        import_file(session, "units", f"unit,beds\n{UNIT},30\n".encode(), "units.csv",
-                    tz=UTC_ZONE)
-        import_file(session, "stays", f"stay_id,unit,admitted_at,admission_type\n{stays}\n"
-                    .encode(), "stays.csv", tz=UTC_ZONE)
+    unit_with_patients(url, UNIT, 30, [f"S-K{i:02d}" for i in range(STAYS)], admitted)
     for username, role in ACCOUNTS.values():
         for w in range(writers):
             make_user(url, account(username, w), role, PASSWORD)
@@ -199,11 +192,7 @@ def sign_in(base: str, kind: str, writer: int = 0) -> tuple[httpx.Client, str]:
     token its forms carry (the session lives in the database: it outlives a restart)."""
     username = account(ACCOUNTS[kind][0], writer)
     client = httpx.Client(base_url=base, timeout=20.0, follow_redirects=False)
-    form = client.get("/signin")
-    token = _CSRF.search(form.text)
-    assert token is not None, form.text[:300]
-    answer = client.post("/signin", data={"username": username, "password": PASSWORD,
-                                          "csrf_token": token.group(1), "next": "/"})
+    answer = sign_in_form(client, username, PASSWORD)
     assert answer.status_code == 303, answer.text[:300]
     # A server that commits after answering may not have stored the session yet (that is
     # tested in test_commit_before_response.py); waiting a little for it here keeps these

@@ -20,11 +20,9 @@ from sqlalchemy import Engine, create_engine
 from sqlalchemy.engine import make_url
 from sqlalchemy.pool import NullPool
 
-from app.ingest import import_file
-from app.store import db
 from app.web.security import SESSION_COOKIE, _token
-from tests.conftest import UTC_ZONE
-from tests.security.fixtures import form_csrf
+from tests.reliability.small_unit import unit_with_patients
+from tests.security.fixtures import sign_in_form as sign_in  # noqa: F401  (re-exported)
 
 UNIT = "RW-EAST"
 STAYS = 30
@@ -62,21 +60,8 @@ def seed_unit(url: str) -> datetime:
     """A unit with STAYS patients in it now; returns the admission time used."""
     admitted = (datetime.now(UTC) - timedelta(days=2)).replace(minute=0, second=0,
                                                               microsecond=0)
-    stays = "".join(f"S-{i:03d},{UNIT},{admitted.isoformat()},emergency\n"
-                    for i in range(STAYS))
-    with db.session_scope(url) as session:
-        import_file(session, "units", f"unit,beds\n{UNIT},40\n".encode(), "units.csv",
-                    tz=UTC_ZONE)
-        import_file(session, "stays", f"stay_id,unit,admitted_at,admission_type\n{stays}"
-                    .encode(), "stays.csv", tz=UTC_ZONE)
+    unit_with_patients(url, UNIT, 40, [f"S-{i:03d}" for i in range(STAYS)], admitted)
     return admitted
-
-
-def sign_in(client: httpx.Client, username: str, password: str) -> httpx.Response:
-    """Sign in through the form, as a browser does; the client keeps the session cookie."""
-    page = client.get("/signin")
-    return client.post("/signin", data={"username": username, "password": password,
-                                        "csrf_token": form_csrf(page.text), "next": "/"})
 
 
 def csrf_for(app: FastAPI, client: httpx.Client) -> str:

@@ -35,6 +35,18 @@ def stamp(moment: datetime) -> str:
     return moment.replace(tzinfo=None).isoformat(timespec="minutes")
 
 
+def unit_with_patients(url: str, unit: str, beds: int, stay_ids: list[str],
+                       admitted: datetime) -> None:
+    """``unit`` with ``beds`` staffed beds and the given emergency stays, all admitted at
+    ``admitted`` and still in (the writers and readers of the reliability tests need no more)."""
+    stays = "".join(f"{sid},{unit},{admitted.isoformat()},emergency\n" for sid in stay_ids)
+    with db.session_scope(url) as session:
+        import_file(session, "units", f"unit,beds\n{unit},{beds}\n".encode(), "units.csv",
+                    tz=UTC_ZONE)
+        import_file(session, "stays", f"stay_id,unit,admitted_at,admission_type\n{stays}"
+                    .encode(), "stays.csv", tz=UTC_ZONE)
+
+
 def unit_files(seed: int = 13) -> dict[str, bytes]:
     """The unit's five CSV files (site zone UTC)."""
     rng = np.random.default_rng(seed)

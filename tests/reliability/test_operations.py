@@ -25,16 +25,7 @@ from app.store import users as accounts
 from app.web.app import create_app
 from tests.conftest import UTC_ZONE
 from tests.reliability.conftest import PASSWORD, SecuredApp
-from tests.security.fixtures import csrf, issue_token, signed_in_client
-
-
-def dump(path: Path) -> dict[str, list[tuple[object, ...]]]:
-    """Every table's rows, sorted: what a refused restore must leave as it was."""
-    with sqlite3.connect(path) as conn:
-        tables = [r[0] for r in conn.execute(
-            "SELECT name FROM sqlite_master WHERE type = 'table' AND name NOT LIKE 'sqlite_%'")]
-        return {t: sorted(conn.execute(f'SELECT * FROM "{t}"').fetchall(), key=repr)
-                for t in tables}
+from tests.security.fixtures import csrf, dump_sqlite, issue_token, signed_in_client
 
 
 def live_path(db_url: str) -> Path:
@@ -80,14 +71,14 @@ def test_restore_refuses_a_backup_whose_schema_morrow_cannot_use(
     with db.session_scope(db_url) as session:
         import_file(session, "units", b"unit,beds\nU-OPS,14\nU-LATE,4\n", "units2.csv",
                     tz=UTC_ZONE)
-    before = dump(live_path(db_url))
+    before = dump_sqlite(live_path(db_url))
     capsys.readouterr()
     for word, path in backups.items():
         assert main(["--db", db_url, "restore", str(path)]) == 2, word
         err = capsys.readouterr().err
         assert word in err and "nothing was changed" in err.lower(), err
         assert "Error" not in err and "Traceback" not in err  # plain words, no exception name
-        assert dump(live_path(db_url)) == before, word
+        assert dump_sqlite(live_path(db_url)) == before, word
     # Nothing was replaced, so no copy of a replaced database was made either.
     assert not [p for p in live_path(db_url).parent.iterdir() if ".before-restore-" in p.name]
     # The database is still usable by the commands and the page.
@@ -124,7 +115,7 @@ def test_a_restore_whose_upgrade_fails_puts_the_database_back(
     backup = backup_copy(db_url, tmp_path / "b.db")
     with db.session_scope(db_url) as session:
         import_file(session, "units", b"unit,beds\nU-LATE,4\n", "units2.csv", tz=UTC_ZONE)
-    before = dump(live_path(db_url))
+    before = dump_sqlite(live_path(db_url))
     upgrade = db.upgrade
     calls: list[str] = []
 
@@ -140,7 +131,7 @@ def test_a_restore_whose_upgrade_fails_puts_the_database_back(
     err = capsys.readouterr().err
     assert "put back" in err and "RuntimeError" not in err, err
     monkeypatch.setattr(db, "upgrade", upgrade)
-    assert dump(live_path(db_url)) == before
+    assert dump_sqlite(live_path(db_url)) == before
     assert main(["--db", db_url, "users", "list"]) == 0
 
 

@@ -16,6 +16,9 @@ For a database that must stay read-only (the shared ``demo_db``), skip signing i
 from __future__ import annotations
 
 import re
+import sqlite3
+from pathlib import Path
+from typing import Any
 
 from fastapi import FastAPI
 from fastapi.testclient import TestClient
@@ -59,14 +62,20 @@ def form_csrf(html: str) -> str:
     return found.group(1)
 
 
+def sign_in_form(client: Any, username: str, password: str) -> Any:
+    """Sign in through the form as a browser does, with any httpx-style client (it keeps the
+    session cookie); the form's answer, a 303 on success."""
+    page = client.get("/signin")
+    assert page.status_code == 200, page.text[:300]
+    return client.post("/signin", data={"username": username, "password": password,
+                                        "csrf_token": form_csrf(page.text), "next": "/"},
+                       follow_redirects=False)
+
+
 def signed_in_client(app: FastAPI, username: str, password: str) -> TestClient:
     """A TestClient that signed in through the sign-in form and keeps its cookies."""
     client = TestClient(app)
-    page = client.get("/signin")
-    assert page.status_code == 200, page.text
-    answer = client.post("/signin", data={"username": username, "password": password,
-                                          "csrf_token": form_csrf(page.text), "next": "/"},
-                         follow_redirects=False)
+    answer = sign_in_form(client, username, password)
     assert answer.status_code == 303, f"sign-in failed ({answer.status_code}): {answer.text}"
     assert client.cookies.get(SESSION_COOKIE)
     return client
@@ -101,3 +110,13 @@ def acting_as(app: FastAPI, role: str, username: str = "test.user") -> Actor:
     for permission in PERMISSIONS:
         app.dependency_overrides[require(permission)] = answer_for(permission)
     return actor
+
+
+def dump_sqlite(path: Path) -> dict[str, list[tuple[object, ...]]]:
+    """Every table's rows of an SQLite file, sorted: what a backup, a restore or a refused
+    restore must preserve."""
+    with sqlite3.connect(path) as conn:
+        tables = [r[0] for r in conn.execute(
+            "SELECT name FROM sqlite_master WHERE type = 'table' AND name NOT LIKE 'sqlite_%'")]
+        return {t: sorted(conn.execute(f'SELECT * FROM "{t}"').fetchall(), key=repr)
+                for t in tables}

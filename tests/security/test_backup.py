@@ -14,16 +14,7 @@ from app.cli.main import main
 from app.ingest import import_file
 from app.store import db
 from tests.conftest import UTC_ZONE
-from tests.security.fixtures import make_user
-
-
-def dump(path: Path) -> dict[str, list[tuple[object, ...]]]:
-    """Every table's rows, sorted: what the round trip must preserve."""
-    with sqlite3.connect(path) as conn:
-        tables = [r[0] for r in conn.execute(
-            "SELECT name FROM sqlite_master WHERE type = 'table' AND name NOT LIKE 'sqlite_%'")]
-        return {t: sorted(conn.execute(f'SELECT * FROM "{t}"').fetchall(), key=repr)
-                for t in tables}
+from tests.security.fixtures import dump_sqlite, make_user
 
 
 def test_backup_and_restore_round_trip(db_url: str, tmp_path: Path,
@@ -34,7 +25,7 @@ def test_backup_and_restore_round_trip(db_url: str, tmp_path: Path,
         import_file(session, "stays", b"stay_id,unit,admitted_at,admission_type\n"
                     b"S-1,U-BK,2026-03-01T10:00,emergency\n", "stays.csv", tz=UTC_ZONE)
     make_user(db_url, "bm.backup", "bed_manager", "a long test password")
-    saved = dump(live)
+    saved = dump_sqlite(live)
     backup = tmp_path / "morrow-backup.db"
 
     # An uncommitted write in another connection is not in the backup: it copies a
@@ -46,7 +37,7 @@ def test_backup_and_restore_round_trip(db_url: str, tmp_path: Path,
     writer.rollback()
     writer.close()
     assert "schema revision" in capsys.readouterr().out
-    assert dump(backup) == saved
+    assert dump_sqlite(backup) == saved
     assert not backup.with_name(backup.name + "-wal").exists()  # one self-contained file
     with sqlite3.connect(backup) as conn:
         assert conn.execute("PRAGMA integrity_check").fetchone()[0] == "ok"
@@ -56,18 +47,18 @@ def test_backup_and_restore_round_trip(db_url: str, tmp_path: Path,
         import_file(session, "units", b"unit,beds\nU-BK,20\nU-NEW,5\n", "units2.csv",
                     tz=UTC_ZONE)
     make_user(db_url, "late.user", "viewer", "a long test password")
-    replaced = dump(live)
+    replaced = dump_sqlite(live)
     assert replaced != saved
     assert main(["--db", db_url, "restore", str(backup)]) == 0
     out = capsys.readouterr().out
     assert "restored" in out
-    assert dump(live) == saved
+    assert dump_sqlite(live) == saved
     with sqlite3.connect(live) as conn:
         assert conn.execute("PRAGMA journal_mode").fetchone()[0] == "wal"
     # What the restore replaced is kept beside the database.
     kept = [p for p in live.parent.iterdir() if ".before-restore-" in p.name]
     assert len(kept) == 1 and str(kept[0]) in out
-    assert dump(kept[0]) == replaced
+    assert dump_sqlite(kept[0]) == replaced
     # The service's own connections read the restored data.
     assert main(["--db", db_url, "users", "list"]) == 0
     listed = capsys.readouterr().out

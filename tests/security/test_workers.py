@@ -35,7 +35,7 @@ from app.store.models import AuditEvent, ImportBatch, Observation, SigningKey
 from app.web.app import create_app
 from app.web.security import SESSION_COOKIE, load_csrf_key
 from tests.databases import PostgresDatabases
-from tests.security.fixtures import form_csrf, make_user, signed_in_client
+from tests.security.fixtures import form_csrf, make_user, sign_in_form, signed_in_client
 from tests.security.test_concurrency import (
     FILES_EACH,
     IMPORTERS,
@@ -186,11 +186,7 @@ def one_shot_client(base: str) -> httpx.Client:
 
 
 def sign_in(client: httpx.Client, username: str) -> str:
-    form = client.get("/signin")
-    token = _CSRF.search(form.text)
-    assert token is not None, form.text[:300]
-    answer = client.post("/signin", data={"username": username, "password": PASSWORD,
-                                          "csrf_token": token.group(1), "next": "/"})
+    answer = sign_in_form(client, username, PASSWORD)
     assert answer.status_code == 303, answer.text[:300]
     page = client.get(f"/units/{UNIT}")
     assert page.status_code == 200, page.text[:300]
