@@ -72,9 +72,10 @@ def row_result(request: Request) -> dict[str, str] | None:
     fields = {k: request.query_params.get(k, "") for k in RESULT_FIELDS}
     if not fields["entered"] or fields["outcome"] not in ("recorded", "refused"):
         return None
-    given = request.query_params.get("sig", "")
-    if not hmac.compare_digest(given, _signature(request, {k: v for k, v in fields.items()
-                                                           if v})):
+    # As bytes: compare_digest raises TypeError on a non-ASCII ``sig`` (a 500).
+    given = request.query_params.get("sig", "").encode("utf-8", "replace")
+    expected = _signature(request, {k: v for k, v in fields.items() if v}).encode("utf-8")
+    if not hmac.compare_digest(given, expected):
         return None
     return fields
 

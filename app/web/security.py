@@ -352,7 +352,9 @@ class RequestGuardMiddleware:
                     return
             given = await _form_token(scope, body)
         expected = _token(key, *binding) if binding is not None else None
-        if expected is None or given is None or not hmac.compare_digest(given, expected):
+        # Compared as bytes: compare_digest raises TypeError on non-ASCII text (a 500).
+        if expected is None or given is None or not hmac.compare_digest(
+                given.encode("utf-8", "replace"), expected.encode("utf-8")):
             await _send_message(
                 send, scope, 403, "Form expired",
                 "This form was sent without its security token (CSRF) or with an old one; "

@@ -12,8 +12,10 @@ import threading
 from collections.abc import Iterator
 from contextlib import contextmanager
 from datetime import UTC, datetime, timedelta
+from pathlib import Path
 
 import httpx2 as httpx
+import pytest
 import uvicorn
 from fastapi import FastAPI
 from sqlalchemy import Engine, create_engine
@@ -69,3 +71,17 @@ def csrf_for(app: FastAPI, client: httpx.Client) -> str:
     cookie = client.cookies.get(SESSION_COOKIE)
     assert cookie, "the client is not signed in"
     return _token(app.state.csrf_key, "session", cookie)
+
+
+def feed_setup(tmp_path: Path, monkeypatch: pytest.MonkeyPatch, unit: str) -> None:
+    """A site secret and a mapping file for ``POST /api/feeds/fhir`` that sends the FHIR
+    example's ward (``ICU-B``, tests/feeds/fhir_examples.py) and its codes to ``unit``."""
+    secret = tmp_path / "feed_secret"
+    secret.write_text("e" * 64 + "\n")
+    secret.chmod(0o600)
+    mapping = tmp_path / "feeds.toml"
+    mapping.write_text(
+        f'[units]\n"ICU-B" = "{unit}"\n[admission_types]\n"103391001" = "emergency"\n'
+        '[outcomes]\n"306689006" = "home"\n[scores]\n"http://loinc.org|9269-2" = "gcs"\n')
+    monkeypatch.setenv("MORROW_FEED_SECRET_FILE", str(secret))
+    monkeypatch.setenv("MORROW_FEED_MAPPING", str(mapping))

@@ -6,7 +6,7 @@ from fastapi.testclient import TestClient
 from sqlalchemy import func, select
 
 from app.store import db
-from app.store.models import AuditEvent, UserAccount
+from app.store.models import AuditEvent, Unit, UserAccount
 from app.web.security import PRESESSION_COOKIE
 from tests.security.conftest import PASSWORD, SecuredApp
 from tests.security.fixtures import csrf, form_csrf, issue_token, signed_in_client
@@ -99,3 +99,35 @@ def test_signin_form_is_protected_too(secured: SecuredApp) -> None:
 def test_no_cookie_write_gets_401_not_a_csrf_refusal(secured: SecuredApp) -> None:
     answer = TestClient(secured.app).post("/api/tokens", json={"username": "x", "label": "y"})
     assert answer.status_code == 401
+
+
+def test_a_token_in_other_characters_is_refused_not_a_server_error(secured: SecuredApp) -> None:
+    # Found by tests/reliability/test_fuzz_routes.py: hmac.compare_digest raises TypeError
+    # on non-ASCII text (Python's hmac documentation), which came back as a 500.
+    client = signed_in_client(secured.app, "bm.test", PASSWORD)
+    users_before = stored_users(secured.db_url)
+    for token in ("?\u00c2", "\u0665\u0660", "\u00e9" * 43):
+        answer = client.post("/people/users", data={**NEW_USER, "csrf_token": token})
+        assert answer.status_code == 403, token
+        fresh = TestClient(secured.app, raise_server_exceptions=False)
+        fresh.get("/signin")
+        answer = fresh.post("/signin", data={"username": "bm.test", "password": PASSWORD,
+                                             "csrf_token": token}, follow_redirects=False)
+        assert answer.status_code == 403, token
+    # A header travels as Latin-1 text: U+00C2 is one it can carry.
+    answer = client.post("/people/users", data=NEW_USER,
+                         headers={b"x-csrf-token": "?\u00c2".encode("latin-1")})
+    assert answer.status_code == 403
+    assert stored_users(secured.db_url) == users_before
+
+
+def test_a_row_answer_signed_in_other_characters_is_ignored(secured: SecuredApp) -> None:
+    # The unit page's signed row answer (routes_scores.row_result) compares a ``sig`` from
+    # the address: one in other characters is a forgery to ignore, not a 500.
+    with db.session_scope(secured.db_url) as session:
+        session.add(Unit(code="KV-TEST"))
+    client = signed_in_client(secured.app, "view.test", PASSWORD)
+    for sig in ("\u00e9", "\u0665" * 32):
+        answer = client.get("/units/KV-TEST", params={
+            "entered": "S-1", "outcome": "recorded", "message": "forged", "sig": sig})
+        assert answer.status_code == 200, sig  # a 500 before the comparison took bytes
