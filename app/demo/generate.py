@@ -5,21 +5,27 @@ Kestrel Vale General Hospital is fictional. It has two units:
 ``KV-CRIT``, a critical care unit
     14 staffed beds until 2025-05-11, 16 from 2025-05-12 (two rows in
     ``units.csv`` with ``valid_from``); daily census at ``00:00``; daily severity
-    score ``sofa`` (0..24). Mostly emergency admissions (about 2.35 a day before
-    capping) plus booked post-operative admissions after afternoon theatre
-    (cardiac surgery, vascular, major general surgery, neurosurgery).
+    score ``sofa`` (0..24) and a ``fit_for_discharge`` flag. Mostly emergency
+    admissions (about 2.35 a day before capping) plus booked post-operative
+    admissions after afternoon theatre (cardiac surgery, vascular, major general
+    surgery, neurosurgery).
 ``KV-SURG``, a surgical ward
     28 staffed beds (one row, no ``valid_from``); daily census at ``23:00`` so the
     census is not at midnight; daily score ``news2`` (0..20) and a
     ``fit_for_discharge`` flag. Mostly booked elective admissions in the morning
-    (orthopaedics, general surgery, vascular) plus surgical emergencies.
+    (orthopaedics, general surgery, vascular), step-downs from ``KV-CRIT`` and a
+    few direct surgical emergencies (about 0.55 a day before capping; 2.4 before the
+    step-downs came in, lowered so the ward's load stayed about the same).
 
 The history runs from ``START`` (2024-10-01) to the anchor instant ``END``
 (2026-11-30 08:00, a Monday morning). Stays still in a unit at ``END`` have a blank
 ``discharged_at`` and ``outcome``; that is the current census. The simulation
 starts ``WARM_UP`` days before ``START`` so the units are not empty on the first
 day; stays discharged before ``START`` are left out (a left-truncated extract,
-as a real one would be).
+as a real one would be), except the critical-care stay a kept ward stay continues.
+
+Both units are simulated together in one event loop (``app.demo.hospital``): the
+step-downs tie them.
 
 Mechanisms
 ----------
@@ -67,6 +73,32 @@ Severity scores
     same ``stay_id``, ``observed_at`` and ``name``, a later ``recorded_at`` and the
     true value (the contract's append-only correction). Entry usually follows the
     observation within 40 minutes, sometimes hours later.
+Step-down and exit block
+    A critical-care patient who survives is clinically ready to leave at the end
+    of the clinical course (the hazards below). The patient then steps down to
+    ``KV-SURG`` with a chance by specialty (surgical ones mostly, medicine a
+    quarter; about 56 % of live discharges in all), else leaves by the unit's
+    other outcomes: ``ward`` meaning ``KV-MEDW`` (a medical ward Morrow does not
+    forecast), another hospital, or home, after a fixed invented delay (0.5-6 hours,
+    a fifth 12-30 hours; moved into 08:00-22:00). A step-down is handed over 15-60
+    minutes after readiness and moves at once if the ward has a free staffed bed,
+    otherwise it keeps its critical-care bed (so critical care turns more
+    emergencies away) until a ward bed frees; transfers happen only between 08:00
+    and 22:00 (ward policy), the longest-waiting first, and never into the ward's
+    escalation bed. The ward stay starts at the transfer instant: same ``patient``,
+    age and sex, ``from_unit`` ``KV-CRIT``, ``admission_type`` ``emergency``,
+    ``source`` ``critical-care``, and a length of stay of its own (the ward's
+    emergency hazard for the specialty, trauma counted as orthopaedics, times 0.85:
+    a little longer). The critical-care stay ends then, outcome ``ward``,
+    ``to_unit`` ``KV-SURG``. While waiting the patient's morning score stays near
+    its last value.
+Patients
+    Every stay has a fictional ``patient`` id ``P`` and six digits, numbered as
+    people first arrive; the two stays of a step-down share it, a readmission
+    gets a new one.
+Fit for discharge (critical care)
+    A ``1`` at the instant the patient is clinically ready (every live discharge),
+    and on some earlier mornings a ``0``.
 Fit for discharge (ward)
     Most ward patients who go home are flagged ``fit_for_discharge = 1`` during a
     daytime round shortly (hours to a day) before leaving, some several days
@@ -105,8 +137,9 @@ from pathlib import Path
 
 import numpy as np
 
+from app.demo.hospital import simulate_hospital
 from app.demo.scenario import UNITS, Booking, Stay, UnitSpec
-from app.demo.simulate import _Clock, _Ids, _minutes, _simulate_unit
+from app.demo.simulate import _Clock, _Ids, _minutes
 
 SEED = 20261130
 START = datetime(2024, 10, 1)
@@ -116,7 +149,7 @@ WARM_UP = timedelta(days=90)
 CENSUS_DAYS = 56
 STAY_COLUMNS = [
     "stay_id", "unit", "admitted_at", "discharged_at", "admission_type", "outcome",
-    "age", "sex", "specialty", "source", "booking_id",
+    "age", "sex", "specialty", "source", "booking_id", "patient", "from_unit", "to_unit",
 ]
 CENSUS_COLUMNS = [
     "taken_at", "unit", "bed", "stay_id", "admitted_at", "admission_type",
@@ -184,16 +217,21 @@ def generate(
     sim_start = datetime.combine((start - WARM_UP).date(), time(0, 0))
     wall = _Clock(sim_start.year - 1, end.year + 1)
 
-    stays: list[Stay] = []
-    bookings: list[Booking] = []
-    for unit in UNITS:
-        unit_stays, unit_bookings = _simulate_unit(rng, unit, sim_start, end, ids, wall)
-        stays += [s for s in unit_stays if s.discharged_at > start]
-        kept = {s.booking_id for s in stays if s.booking_id}
-        bookings += [
-            b for b in unit_bookings
-            if b.planned_date >= start.date() or b.booking_id in kept
-        ]
+    every_stay, every_booking = simulate_hospital(rng, sim_start, end, ids, wall)
+    # Left truncation: stays over before ``start`` are left out, except the earlier stays
+    # of a patient's spell that reaches into the history (a step-down's critical care).
+    kept_ids = {s.stay_id for s in every_stay if s.discharged_at > start}
+    for s in every_stay:
+        if s.stay_id in kept_ids:
+            previous = s.previous
+            while previous is not None:
+                kept_ids.add(previous.stay_id)
+                previous = previous.previous
+    stays: list[Stay] = [s for s in every_stay if s.stay_id in kept_ids]
+    kept = {s.booking_id for s in stays if s.booking_id}
+    bookings: list[Booking] = [
+        b for b in every_booking if b.planned_date >= start.date() or b.booking_id in kept
+    ]
 
     def known(t: datetime) -> datetime | None:
         return t if t <= end else None
@@ -208,7 +246,8 @@ def generate(
             "discharged_at": _ts(s.discharged_at) if gone else "",
             "admission_type": s.admission_type, "outcome": s.outcome if gone else "",
             "age": s.age, "sex": s.sex, "specialty": s.specialty, "source": s.source,
-            "booking_id": s.booking_id,
+            "booking_id": s.booking_id, "patient": s.patient, "from_unit": s.from_unit,
+            "to_unit": s.to_unit if gone else "",
         })
         unit = next(u for u in UNITS if u.code == s.unit)
         entries = [(t, unit.score, v, True) for t, v in s.scores]

@@ -48,7 +48,9 @@ class UnitSpec:
     long_stay_share: float
     long_stay_factor: float
     alive_outcomes: tuple[tuple[str, float], ...]
-    fit_flag: bool
+    # Which ``fit_for_discharge`` flags the unit records: "" none, "ward" a noisy 1 hours
+    # to days before a live discharge, "ready" a 1 exactly at the clinical readiness.
+    fit_flag: str
 
     def beds_at(self, t: datetime) -> int:
         """Staffed beds at ``t``: a count applies from its day's census instant on."""
@@ -108,8 +110,9 @@ CRITICAL_CARE = UnitSpec(
     score_noise=1.1,
     long_stay_share=0.08,
     long_stay_factor=0.22,
-    alive_outcomes=(("ward", 0.88), ("transfer", 0.07), ("home", 0.05)),
-    fit_flag=False,
+    # Used only for the live discharges that do not step down to KV-SURG (see STEP_DOWN).
+    alive_outcomes=(("ward", 0.76), ("transfer", 0.13), ("home", 0.11)),
+    fit_flag="ready",
 )
 
 
@@ -120,7 +123,9 @@ SURGICAL_WARD = UnitSpec(
     census_time=time(23, 0),
     score="news2",
     score_max=20,
-    emergency_per_day=2.4,
+    # Lowered from 2.4 when the step-downs from KV-CRIT came in, so the ward's load
+    # stays about what it was (its mean occupancy, before and after, in the report).
+    emergency_per_day=0.55,
     emergency_mix=(
         Specialty("general-surgery", 0.55,
                   (("emergency-dept", 0.80), ("ward", 0.15), ("other-hospital", 0.05)),
@@ -154,11 +159,54 @@ SURGICAL_WARD = UnitSpec(
     long_stay_share=0.06,
     long_stay_factor=0.25,
     alive_outcomes=(("home", 0.93), ("transfer", 0.04), ("ward", 0.03)),
-    fit_flag=True,
+    fit_flag="ward",
 )
 
 
 UNITS: tuple[UnitSpec, ...] = (CRITICAL_CARE, SURGICAL_WARD)
+
+
+@dataclass(frozen=True)
+class StepDown:
+    """The invented routing out of KV-CRIT and the step-down rules of the pair."""
+
+    sender: str
+    receiver: str
+    # Chance that a live KV-CRIT discharge steps down to KV-SURG, by specialty (the
+    # surgical ones mostly do; medicine mostly goes to the medical ward).
+    share: tuple[tuple[str, float], ...]
+    # The medical ward Morrow does not forecast (the other "ward" outcomes go there).
+    other_ward: str
+    # Step-downs move only between these hours (ward policy).
+    window: tuple[time, time]
+    # Handover once clinically ready, minutes (uniform).
+    handover: tuple[int, int]
+    # Length of stay on the ward after critical care: the receiving unit's emergency
+    # hazard for the mapped specialty times this factor (below 1: a bit longer).
+    hazard_factor: float
+    source: str
+    # Specialty on the ward for a critical-care specialty (others keep their name).
+    specialty: tuple[tuple[str, str], ...]
+    # Hazard of the ward's emergency specialties, for step-downs of other specialties.
+    other_hazard: float
+    # Delay before a discharge that does not go to KV-SURG: (share, low, high) hours.
+    delays: tuple[tuple[float, float, float], ...]
+
+
+STEP_DOWN = StepDown(
+    sender="KV-CRIT",
+    receiver="KV-SURG",
+    share=(("medicine", 0.25), ("general-surgery", 0.80), ("trauma", 0.70),
+           ("neurosurgery", 0.50), ("cardiac-surgery", 0.60), ("vascular", 0.80)),
+    other_ward="KV-MEDW",
+    window=(time(8, 0), time(22, 0)),
+    handover=(15, 60),
+    hazard_factor=0.85,
+    source="critical-care",
+    specialty=(("trauma", "orthopaedics"),),
+    other_hazard=0.8,
+    delays=((0.80, 0.5, 6.0), (0.20, 12.0, 30.0)),
+)
 
 
 @dataclass
@@ -194,3 +242,8 @@ class Stay:
     booking_id: str
     scores: list[tuple[datetime, int]] = field(default_factory=list)
     fit_flags: list[tuple[datetime, int]] = field(default_factory=list)
+    patient: str = ""
+    from_unit: str = ""
+    to_unit: str = ""
+    ready_at: datetime | None = None  # clinically ready to leave (live discharges)
+    previous: Stay | None = None  # the stay this one continues (a step-down)

@@ -1,8 +1,9 @@
-"""Simulating one demo unit: arrivals, bookings, stays, scores and flags."""
+"""The demo's patient-level mechanics: arrivals, bookings, courses, scores and flags.
+
+The two units are simulated together in ``app.demo.hospital``."""
 
 from __future__ import annotations
 
-import heapq
 import math
 from datetime import date, datetime, time, timedelta
 
@@ -333,102 +334,18 @@ def _fit_flags(
     return flags
 
 
-def _simulate_unit(
-    rng: np.random.Generator,
-    unit: UnitSpec,
-    sim_start: datetime,
-    end: datetime,
-    ids: _Ids,
-    wall: _Clock,
-) -> tuple[list[Stay], list[Booking]]:
-    bookings = _bookings(
-        rng, unit, sim_start.date(), end.date() + timedelta(days=BOOKING_HORIZON_DAYS),
-        end, ids, wall,
-    )
-    emergencies = _emergency_arrivals(rng, unit, sim_start.date(), end, wall)
-    events: list[tuple[datetime, int, int]] = [(t, 0, i) for i, t in enumerate(emergencies)]
-    events += [
-        (b.admit_at, 1, i)
-        for i, b in enumerate(bookings)
-        if b.admit_at <= end and (b.cancelled_at is None or b.cancelled_at > b.admit_at)
-    ]
-    events.sort()
-
-    stays: list[Stay] = []
-    active: dict[str, Stay] = {}
-    leaving: list[tuple[datetime, str]] = []  # heap of (discharge, stay_id); stale ones skipped
-    occupied: set[str] = set()
-    escalation = f"{unit.bed_prefix}X1"
-    last_event = sim_start
-    for t, kind, i in events:
-        while leaving and leaving[0][0] <= t:
-            _, stay_id = heapq.heappop(leaving)
-            gone = active.pop(stay_id, None)
-            if gone is not None:
-                occupied.discard(gone.bed)
-        beds = unit.beds_at(t)
-        if len(active) >= beds + 1:
-            if kind == 0:
-                last_event = t
-                continue  # emergencies go elsewhere and leave no row here
-            booking = bookings[i]
-            # A full unit makes room for a booked patient by moving out early the
-            # patient due to leave soonest today; failing that the booking is cancelled.
-            due = [
-                s for s in active.values()
-                if s.outcome != "died" and s.discharged_at.date() == t.date()
-            ]
-            if due:
-                early = min(due, key=lambda s: (s.discharged_at, s.stay_id))
-                moved = t - _minutes(rng.integers(5, 46))
-                floor = max(last_event, early.admitted_at + timedelta(minutes=1))
-                # Elective windows start at 07:00, so wall() never moves this past t.
-                early.discharged_at = wall.wall(min(t, max(moved, floor)))
-                early.scores = [(at, v) for at, v in early.scores if at < early.discharged_at]
-                del active[early.stay_id]
-                occupied.discard(early.bed)
-            else:
-                day_start = max(
-                    datetime.combine(t.date(), time(6, 0)), booking.booked_at + timedelta(minutes=1)
-                )
-                span = max(1, int((t - day_start).total_seconds() / 60) - 30)
-                booking.cancelled_at = wall.wall(day_start + _minutes(rng.integers(0, span)))
-                last_event = t
-                continue
-        last_event = t
-        if kind == 0:
-            spec = _pick_specialty(rng, unit.emergency_mix)
-            admission_type, booking_id = "emergency", ""
-            age, sex = _age(rng, spec), _sex(rng, unit)
-            specialty, source = spec.name, _choice(rng, spec.sources)
-            hazard, score_mean = spec.hazard * unit.emergency_factor, spec.score_mean
-        else:
-            booking = bookings[i]
-            admission_type, booking_id = "elective", booking.booking_id
-            age, sex = booking.age, booking.sex
-            specialty, source = booking.specialty, booking.source
-            hazard, score_mean = booking.hazard, booking.score_mean
-        score0 = _initial_score(rng, score_mean, unit.score_max)
-        discharged_at, died, scores = _course(rng, unit, t, score0, hazard, age, wall)
-        free = [
-            f"{unit.bed_prefix}{n:02d}"
-            for n in range(1, beds + 1)
-            if f"{unit.bed_prefix}{n:02d}" not in occupied
-        ]
-        bed = free[int(rng.integers(0, len(free)))] if free else escalation
-        outcome = "died" if died else _choice(rng, unit.alive_outcomes)
-        stay = Stay(
-            stay_id=ids.new("S"), unit=unit.code, bed=bed, admitted_at=t,
-            discharged_at=discharged_at, admission_type=admission_type, outcome=outcome,
-            age=age, sex=sex, specialty=specialty, source=source, booking_id=booking_id,
-            scores=scores,
-        )
-        stays.append(stay)
-        active[stay.stay_id] = stay
-        occupied.add(bed)
-        heapq.heappush(leaving, (discharged_at, stay.stay_id))
-    if unit.fit_flag:
-        # After the loop: an early move-out above changes the discharge the flag precedes.
-        for stay in stays:
-            stay.fit_flags = _fit_flags(rng, stay, wall)
-    return stays, bookings
+def _readiness_flags(
+    rng: np.random.Generator, stay: Stay, wall: _Clock
+) -> list[tuple[datetime, int]]:
+    """Critical-care readiness: a 1 exactly when the patient is clinically ready to leave
+    (every live discharge), some 0s on earlier mornings."""
+    flag_at = None if stay.outcome == "died" else stay.ready_at
+    flags: list[tuple[datetime, int]] = []
+    limit = flag_at if flag_at is not None else stay.discharged_at
+    for t, _ in stay.scores[1:]:
+        unflagged_at = wall.wall(t + _minutes(rng.integers(60, 181)))
+        if rng.random() < 0.25 and unflagged_at < limit:
+            flags.append((unflagged_at, 0))
+    if flag_at is not None:
+        flags.append((flag_at, 1))
+    return flags

@@ -7,12 +7,20 @@ part of an ADT or ORU stream: load them from their CSV files either way.
 
 The stream is in the order things became known: an admission at its ``admitted_at``, a
 score at its ``recorded_at``, a discharge at its ``discharged_at`` (at one instant:
-admissions, then scores, then discharges). Each CSV stay is one visit: its ``stay_id`` is
-the visit number (HL7 PV1-19, FHIR ``Encounter.identifier``), which the feed replaces by a
-keyed hash, and its ``patient`` (or, where none is stored, ``P`` and the stay id) the person
-identifier (PID-3, ``Patient.identifier``). The age becomes a date of birth one day before
-the birthday reached on the admission day, so the age at admission read back is the stored
-age; no real date of birth exists anywhere in it.
+admissions, then scores, then discharges and transfers). A stay is one visit, or one part
+of a visit: a stay entered from another unit (``from_unit``; the stay of the same
+``patient`` there ends at this admission with ``to_unit`` this unit) continues its
+predecessor's visit, and the move is a transfer (HL7 ADT^A02, PV1-6 the unit left, PV1-36
+the outcome of the stay left; FHIR a new ``Encounter.location``). A stay ending with a
+``to_unit`` whose stay is not exported (a place outside the hospital, such as a ward
+Morrow does not forecast) is a transfer there too, and the mapping written beside the
+export ignores that point of care. The visit number (HL7 PV1-19, FHIR
+``Encounter.identifier``), which the feed replaces by a keyed hash, is the ``stay_id`` of
+the visit's first stay (``visit_numbers``), and the stay's ``patient`` (or, where none is
+stored, ``P`` and the stay id) the person identifier (PID-3, ``Patient.identifier``).
+The age becomes a date of birth one day before the birthday reached on the admission day,
+so the age at admission read back is the stored age; no real date of birth exists anywhere
+in it.
 
 HL7 v2.5.1 fields written (``app.feeds.hl7_v2`` reads the same ones):
 MSH-7 the known-at time; EVN-2 and EVN-6 the event's clinical time; PID-3 person, PID-7
@@ -28,13 +36,16 @@ when a stay begins (``in-progress``) and another when it ends (``finished``, wit
 ``period.end``), each with ``meta.lastUpdated`` at its event; an Observation per score with
 ``effectiveDateTime`` and ``issued`` (its recorded time); the Location of the unit (its
 identifier is the unit code) and the Patient (identifier, gender, birthDate) they refer to.
+An Encounter lists every unit of its visit so far. FHIR R4 gives an Encounter one priority,
+admit source and service type and no disposition per move, so a visit's stays all carry
+its first stay's (the importer gives a stay left by a move the outcome ``transfer``).
 """
 
 from __future__ import annotations
 
 import hashlib
 import json
-from collections.abc import Iterator
+from collections.abc import Iterable, Iterator
 from dataclasses import dataclass
 from datetime import date, datetime, timedelta
 from pathlib import Path
@@ -70,7 +81,7 @@ MAPPING_TOML = """\
 "EL" = "elective"
 """
 
-_RANK = {"admit": 0, "score": 1, "discharge": 2}
+_RANK = {"admit": 0, "score": 1, "discharge": 2, "transfer": 2}
 
 
 @dataclass(frozen=True)
@@ -78,15 +89,49 @@ class ReplayItem:
     """One thing that became known: a stay beginning or ending, or a score."""
 
     known_at: datetime
-    kind: str  # "admit", "score" or "discharge"
+    kind: str  # "admit", "score", "discharge" or "transfer" (``stay`` is the stay left)
     stay: Stay
     observation: Observation | None = None
     bed: str | None = None
+    visit: str = ""  # the visit number; "" for the stay's own id
+    entering: Stay | None = None  # for a transfer: the stay entered, if exported
+    chain: tuple[Stay, ...] = ()  # the visit's stays up to ``stay`` (FHIR locations)
+
+    @property
+    def visit_number(self) -> str:
+        return self.visit or self.stay.stay_id
 
     def order(self) -> tuple[datetime, int, str, datetime, int]:
         obs = self.observation
         return (self.known_at, _RANK[self.kind], self.stay.stay_id,
                 obs.observed_at if obs else self.known_at, obs.revision if obs else 0)
+
+
+def predecessors(stays: Iterable[Stay]) -> dict[str, Stay]:
+    """For each stay entered from another unit, the stay it continues: the same patient's
+    stay in ``from_unit`` ending at this admission with ``to_unit`` this unit."""
+    ends = {(s.patient, s.unit, s.to_unit, s.discharged_at): s for s in stays
+            if s.patient and s.to_unit and s.discharged_at is not None}
+    found = {}
+    for s in stays:
+        if s.patient and s.from_unit:
+            before = ends.get((s.patient, s.from_unit, s.unit, s.admitted_at))
+            if before is not None:
+                found[s.stay_id] = before
+    return found
+
+
+def visit_numbers(stays: Iterable[Stay]) -> dict[str, str]:
+    """The visit number of each stay: the ``stay_id`` of the first stay of its visit."""
+    stays = list(stays)
+    before = predecessors(stays)
+    out: dict[str, str] = {}
+    for s in stays:
+        first = s
+        while first.stay_id in before:
+            first = before[first.stay_id]
+        out[s.stay_id] = first.stay_id
+    return out
 
 
 def history(session: Session, *, units: list[str] | None = None,
@@ -105,19 +150,40 @@ def history(session: Session, *, units: list[str] | None = None,
     for unit in sorted({s.unit for s in stays.values()}):
         beds.update(repo.latest_beds(session, unit, sorted(
             sid for sid, s in stays.items() if s.unit == unit)))
+    before = predecessors(stays.values())
+    after = {prev.stay_id: stays[sid] for sid, prev in before.items()}
+    visit = visit_numbers(stays.values())
+
+    def chain(stay: Stay) -> tuple[Stay, ...]:
+        out = [stay]
+        while out[0].stay_id in before:
+            out.insert(0, before[out[0].stay_id])
+        return tuple(out)
+
     items: list[ReplayItem] = []
     for stay in stays.values():
-        items.append(ReplayItem(as_utc(stay.admitted_at), "admit", stay,
-                                bed=beds.get(stay.stay_id)))
-        if stay.discharged_at is not None and (until is None or stay.discharged_at <= until):
+        sid = stay.stay_id
+        if sid not in before:
+            items.append(ReplayItem(as_utc(stay.admitted_at), "admit", stay,
+                                    bed=beds.get(sid), visit=visit[sid], chain=(stay,)))
+        if stay.discharged_at is None or (until is not None and stay.discharged_at > until):
+            continue
+        entering = after.get(sid)
+        if entering is not None or stay.to_unit:
+            items.append(ReplayItem(
+                as_utc(stay.discharged_at), "transfer", stay, visit=visit[sid],
+                bed=beds.get(entering.stay_id) if entering is not None else None,
+                entering=entering, chain=chain(stay)))
+        else:
             items.append(ReplayItem(as_utc(stay.discharged_at), "discharge", stay,
-                                    bed=beds.get(stay.stay_id)))
+                                    bed=beds.get(sid), visit=visit[sid], chain=chain(stay)))
     for part in repo.chunked(sorted(stays), 500):
         for obs in session.scalars(select(Observation).where(Observation.stay_id.in_(part))):
             if until is not None and obs.recorded_at > until:
                 continue
             items.append(ReplayItem(as_utc(obs.recorded_at), "score", stays[obs.stay_id], obs,
-                                    bed=beds.get(obs.stay_id)))
+                                    bed=beds.get(obs.stay_id), visit=visit[obs.stay_id],
+                                    chain=chain(stays[obs.stay_id])))
     items.sort(key=ReplayItem.order)
     return items
 
@@ -163,7 +229,8 @@ def _pid(stay: Stay, tz: ZoneInfo) -> str:
     return f"PID|1||{_escape(_person(stay))}^^^{FACILITY}^MR||||{born}|{sex}"
 
 
-def _pv1(stay: Stay, tz: ZoneInfo, bed: str | None, *, discharged: bool) -> str:
+def _pv1(stay: Stay, tz: ZoneInfo, bed: str | None, *, discharged: bool,
+         visit: str = "") -> str:
     fields = [""] * 46
     fields[1] = "1"
     fields[2] = "I"
@@ -172,11 +239,35 @@ def _pv1(stay: Stay, tz: ZoneInfo, bed: str | None, *, discharged: bool) -> str:
     fields[5] = _escape(stay.booking_id)
     fields[10] = _escape(stay.specialty)
     fields[14] = _escape(stay.source)
-    fields[19] = _escape(stay.stay_id)
+    fields[19] = _escape(visit or stay.stay_id)
     fields[44] = _ts(as_utc(stay.admitted_at), tz)
     if discharged and stay.discharged_at is not None:
         fields[36] = _escape(stay.outcome)
         fields[45] = _ts(as_utc(stay.discharged_at), tz)
+    return "PV1|" + "|".join(fields[1:]).rstrip("|")
+
+
+def _pv1_transfer(item: ReplayItem, tz: ZoneInfo) -> str:
+    """PV1 of an A02: the unit entered (PV1-3) and its stay's covariates and admission
+    time (PV1-44), the unit left (PV1-6) and that stay's outcome (PV1-36)."""
+    left, entering = item.stay, item.entering
+    fields = [""] * 46
+    fields[1] = "1"
+    fields[2] = "I"
+    if entering is not None:
+        bed = item.bed
+        fields[3] = (f"{_escape(entering.unit)}^^{_escape(bed)}" if bed
+                     else _escape(entering.unit))
+    else:
+        fields[3] = _escape(left.to_unit)
+    now = entering if entering is not None else left
+    fields[4] = ADMISSION_TYPE_CODES.get(now.admission_type, "")
+    fields[6] = _escape(left.unit)
+    fields[10] = _escape(now.specialty)
+    fields[14] = _escape(now.source)
+    fields[19] = _escape(item.visit_number)
+    fields[36] = _escape(left.outcome)
+    fields[44] = _ts(as_utc(now.admitted_at), tz)
     return "PV1|" + "|".join(fields[1:]).rstrip("|")
 
 
@@ -190,12 +281,19 @@ def _msh(sent: datetime, kind: str, structure: str, body: str, tz: ZoneInfo) -> 
 
 
 def hl7_message(item: ReplayItem, tz: ZoneInfo) -> str:
-    """One ADT^A01, ADT^A03 or ORU^R01 message, segments ended by carriage returns."""
+    """One ADT^A01, A02, A03 or ORU^R01 message, segments ended by carriage returns."""
     stay = item.stay
-    if item.kind in ("admit", "discharge"):
+    if item.kind == "transfer":
+        person = item.entering if item.entering is not None else stay
+        segments = [f"EVN|A02|{_ts(item.known_at, tz)}||||{_ts(item.known_at, tz)}",
+                    _pid(person, tz), _pv1_transfer(item, tz)]
+        body = "\r".join(segments)
+        head = _msh(item.known_at, "ADT^A02", "ADT_A02", body, tz)
+    elif item.kind in ("admit", "discharge"):
         event = "A01" if item.kind == "admit" else "A03"
         segments = [f"EVN|{event}|{_ts(item.known_at, tz)}||||{_ts(item.known_at, tz)}",
-                    _pid(stay, tz), _pv1(stay, tz, item.bed, discharged=item.kind == "discharge")]
+                    _pid(stay, tz), _pv1(stay, tz, item.bed, discharged=item.kind == "discharge",
+                                         visit=item.visit_number)]
         body = "\r".join(segments)
         head = _msh(item.known_at, f"ADT^{event}", "ADT_A01" if event == "A01" else "ADT_A03",
                     body, tz)
@@ -204,7 +302,8 @@ def hl7_message(item: ReplayItem, tz: ZoneInfo) -> str:
         assert obs is not None
         status = "D" if obs.withdrawn else "F"
         observed = _ts(as_utc(obs.observed_at), tz)
-        segments = [_pid(stay, tz), _pv1(stay, tz, item.bed, discharged=False),
+        segments = [_pid(stay, tz), _pv1(stay, tz, item.bed, discharged=False,
+                                         visit=item.visit_number),
                     f"OBR|1|||SCORES^Scores|||{observed}",
                     f"OBX|1|NM|{_escape(obs.name)}^{_escape(obs.name)}||{_number(obs.value)}"
                     f"||||||{status}|||{observed}"]
@@ -221,8 +320,21 @@ def write_hl7(items: list[ReplayItem], out: Path, tz: ZoneInfo) -> int:
         for item in items:
             handle.write(hl7_message(item, tz) + "\n")
             count += 1
-    (out.parent / "feeds.toml").write_text(MAPPING_TOML, encoding="utf-8")
+    (out.parent / "feeds.toml").write_text(mapping_toml(items), encoding="utf-8")
     return count
+
+
+def mapping_toml(items: list[ReplayItem]) -> str:
+    """The mapping for the export: its codes, and the points of care of transfers out of the
+    exported stays that no exported stay enters (ignored: Morrow keeps only the move)."""
+    entered = {i.entering.unit for i in items if i.kind == "transfer" and i.entering}
+    elsewhere = sorted({i.stay.to_unit for i in items if i.kind == "transfer"
+                        and i.entering is None and i.stay.to_unit} - entered)
+    if not elsewhere:
+        return MAPPING_TOML
+    listed = ", ".join(json.dumps(code) for code in elsewhere)
+    return (MAPPING_TOML + "\n[locations]            # transfers to places not exported\n"
+            f"ignore = [{listed}]\n")
 
 
 # -- FHIR R4 ---------------------------------------------------------------------------------
@@ -254,16 +366,44 @@ def _patient(stay: Stay, tz: ZoneInfo) -> dict[str, Any]:
     return resource
 
 
+def _places(item: ReplayItem, tz: ZoneInfo) -> list[dict[str, Any]]:
+    """Encounter.location: every unit of the visit so far, each with its period."""
+    chain = item.chain or (item.stay,)
+    places: list[dict[str, Any]] = []
+    for i, part in enumerate(chain):
+        period = {"start": _iso(as_utc(part.admitted_at), tz)}
+        done = i < len(chain) - 1 or item.kind in ("discharge", "transfer")
+        if done and part.discharged_at is not None:
+            period["end"] = _iso(as_utc(part.discharged_at), tz)
+        places.append({"location": {"reference": f"Location/{_rid('l', part.unit)}"},
+                       "status": "completed" if done else "active", "period": period})
+    if item.kind == "transfer":
+        code = item.entering.unit if item.entering is not None else item.stay.to_unit or ""
+        places.append({"location": {"reference": f"Location/{_rid('l', code)}"},
+                       "status": "active", "period": {"start": _iso(item.known_at, tz)}})
+    return places
+
+
+def _units_of(item: ReplayItem) -> list[str]:
+    units = [part.unit for part in item.chain or (item.stay,)]
+    if item.kind == "transfer":
+        units.append(item.entering.unit if item.entering is not None
+                     else item.stay.to_unit or "")
+    return units
+
+
 def _encounter(item: ReplayItem, tz: ZoneInfo) -> dict[str, Any]:
-    stay = item.stay
+    # One priority, admit source and service type per Encounter: the visit's first stay's.
+    stay = (item.chain or (item.stay,))[0]
     finished = item.kind == "discharge"
     period: dict[str, str] = {"start": _iso(as_utc(stay.admitted_at), tz)}
-    if finished and stay.discharged_at is not None:
-        period["end"] = _iso(as_utc(stay.discharged_at), tz)
+    if finished and item.stay.discharged_at is not None:
+        period["end"] = _iso(as_utc(item.stay.discharged_at), tz)
+    visit = item.visit_number
     resource: dict[str, Any] = {
-        "resourceType": "Encounter", "id": _rid("e", stay.stay_id),
+        "resourceType": "Encounter", "id": _rid("e", visit),
         "meta": {"lastUpdated": _iso(item.known_at, tz)},
-        "identifier": [{"system": "urn:morrow:replay:visit", "value": stay.stay_id}],
+        "identifier": [{"system": "urn:morrow:replay:visit", "value": visit}],
         "status": "finished" if finished else "in-progress",
         "class": {"system": "http://terminology.hl7.org/CodeSystem/v3-ActCode", "code": "IMP"},
         "priority": {"coding": [{
@@ -271,8 +411,7 @@ def _encounter(item: ReplayItem, tz: ZoneInfo) -> dict[str, Any]:
             "code": FHIR_PRIORITY[stay.admission_type]}]},
         "subject": {"reference": f"Patient/{_rid('p', _person(stay))}"},
         "period": period,
-        "location": [{"location": {"reference": f"Location/{_rid('l', stay.unit)}"},
-                      "status": "completed" if finished else "active", "period": period}],
+        "location": _places(item, tz),
     }
     if stay.specialty:
         resource["serviceType"] = {"coding": [{"code": stay.specialty}]}
@@ -281,8 +420,8 @@ def _encounter(item: ReplayItem, tz: ZoneInfo) -> dict[str, Any]:
         hospitalization["preAdmissionIdentifier"] = {"value": stay.booking_id}
     if stay.source:
         hospitalization["admitSource"] = {"coding": [{"code": stay.source}]}
-    if finished and stay.outcome:
-        hospitalization["dischargeDisposition"] = {"coding": [{"code": stay.outcome}]}
+    if finished and item.stay.outcome:
+        hospitalization["dischargeDisposition"] = {"coding": [{"code": item.stay.outcome}]}
     if hospitalization:
         resource["hospitalization"] = hospitalization
     return resource
@@ -298,9 +437,9 @@ def _observation(item: ReplayItem, tz: ZoneInfo) -> dict[str, Any]:
             "code": {"coding": [{"code": obs.name}], "text": obs.name},
             "subject": {"reference": f"Patient/{_rid('p', _person(item.stay))}"},
             # The visit number too: the Encounter may be in an earlier day's Bundle.
-            "encounter": {"reference": f"Encounter/{_rid('e', item.stay.stay_id)}",
+            "encounter": {"reference": f"Encounter/{_rid('e', item.visit_number)}",
                           "identifier": {"system": "urn:morrow:replay:visit",
-                                         "value": item.stay.stay_id}},
+                                         "value": item.visit_number}},
             "effectiveDateTime": _iso(as_utc(obs.observed_at), tz),
             "issued": _iso(item.known_at, tz),
             "valueQuantity": {"value": value, "unit": "score",
@@ -326,7 +465,10 @@ def fhir_bundles(items: list[ReplayItem], tz: ZoneInfo) -> Iterator[tuple[date, 
             yield day, bundle()
             entries, placed = [], set()
         day, last = local, item.known_at
-        for resource in (_location(item.stay.unit), _patient(item.stay, tz)):
+        # One birth date per visit (its first stay's), whichever of its stays comes first.
+        person = (item.chain or (item.stay,))[0]
+        resources = [_location(code) for code in _units_of(item)]
+        for resource in (*resources, _patient(person, tz)):
             ref = f"{resource['resourceType']}/{resource['id']}"
             if ref not in placed:
                 placed.add(ref)
@@ -344,5 +486,5 @@ def write_fhir(items: list[ReplayItem], out: Path, tz: ZoneInfo) -> int:
     for day, bundle in fhir_bundles(items, tz):
         (out / f"{day.isoformat()}.json").write_text(json.dumps(bundle), encoding="utf-8")
         count += 1
-    (out / "feeds.toml").write_text(MAPPING_TOML, encoding="utf-8")
+    (out / "feeds.toml").write_text(mapping_toml(items), encoding="utf-8")
     return count

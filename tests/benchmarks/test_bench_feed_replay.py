@@ -28,6 +28,7 @@ from sqlalchemy import select
 from app.cli.feeds import read_messages
 from app.feeds.events import stay_id_for
 from app.feeds.pseudonym import Pseudonymiser, load_secret
+from app.feeds.replay import visit_numbers
 from app.forecast.service import forecast, train_model
 from app.store import db
 from app.store.models import CensusRow, CensusSnapshot, Observation, Stay, TrainedModel
@@ -108,8 +109,11 @@ def test_the_whole_demo_over_mllp_gives_the_csv_answers(demo_db: str, tmp_path: 
 
     keys = Pseudonymiser(load_secret(secret))
     with db.session_scope(csv_url) as session:
-        admitted = {s.stay_id: s.admitted_at for s in session.scalars(select(Stay))}
-    rename = {stay_id_for(keys.visit(sid), at): sid for sid, at in admitted.items()}
+        every = list(session.scalars(select(Stay)))
+        admitted = {s.stay_id: s.admitted_at for s in every}
+        # A step-down is replayed as a transfer within its critical-care stay's visit.
+        visit = visit_numbers(every)
+    rename = {stay_id_for(keys.visit(visit[sid]), at): sid for sid, at in admitted.items()}
     assert _stays(feed_url, rename) == _stays(csv_url, {})
     assert _scores(feed_url, rename) == _scores(csv_url, {})
     # census.csv also holds a snapshot at the demo's last morning (08:00, not a census time).
