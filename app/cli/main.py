@@ -191,7 +191,8 @@ def cmd_backtest(args: argparse.Namespace) -> int:
     with db.session_scope(args.db) as session:
         _known_unit(session, args.unit)
         result = run_backtest(session, args.unit, start, end, get_settings().tz, days=args.days,
-                              progress=None if args.json else text_progress)
+                              progress=None if args.json else text_progress,
+                              transfers=args.transfers)
     default_plot = f"backtest-{args.unit}-{start}-{end}.png"
     plot = save_calibration_plot(result, Path(args.plot or default_plot))
     result["plot"] = str(plot)
@@ -374,6 +375,9 @@ def build_parser() -> argparse.ArgumentParser:
                    f"{bounds.MIN_FORECAST_DAYS} to {bounds.MAX_FORECAST_DAYS} (default 7)")
     p.add_argument("--plot", default=None, help="where to save the calibration plot (PNG)")
     p.add_argument("--json", action="store_true")
+    p.add_argument("--transfers", choices=("pass-on", "stream"), default="pass-on",
+                   help="patients other units pass on: through their own forecasts "
+                        "(pass-on, default) or as a stream of this unit's (stream)")
     p.set_defaults(func=cmd_backtest)
 
     p = sub.add_parser("serve", help="serve the web page and API")

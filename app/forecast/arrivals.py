@@ -24,7 +24,7 @@ not yet booked, all from what was known at the training cut-off.
 
 from __future__ import annotations
 
-from collections.abc import Mapping
+from collections.abc import Collection, Mapping
 from dataclasses import replace
 from datetime import date, datetime, time, timedelta
 from typing import Any
@@ -214,11 +214,45 @@ def _demand_profile(admitted_hours: pd.Series, open_by_hour: np.ndarray) -> np.n
     return demand / demand.sum()
 
 
-def train_arrivals(state: UnitState) -> dict[str, Any]:
-    """The arrivals part of a trained model, as a JSON-ready dict."""
+def passed_on_mask(stays: pd.DataFrame, senders: Collection[str]) -> pd.Series:
+    """Stays admitted by transfer from one of ``senders`` (other units of the hospital)."""
+    if "from_unit" not in stays or not senders:
+        return pd.Series(False, index=stays.index)
+    return stays["from_unit"].isin(list(senders))
+
+
+def _transfer_streams(state: UnitState, came: pd.Series, first: date, last: date
+                      ) -> dict[str, Any]:
+    """Per sending unit, its transfers in as a stream of their own (daily rate by weekday,
+    Poisson or negative binomial, and clock-hour profile): used where the sender has no
+    model to pass its patients on with, and as the baseline that treats them as arrivals."""
+    stays = state.stays
+    if not came.any():
+        return {}
+    admitted = _local(stays["admitted_at"], state)
+    out: dict[str, Any] = {}
+    for sender in sorted(set(stays.loc[came, "from_unit"])):
+        mask = came & (stays["from_unit"] == sender)
+        days, counts = _daily_counts(admitted[mask], first, last)
+        if len(days) < MIN_WINDOW_DAYS:
+            continue
+        rate = fit_daily_rate(days, counts, seasonal=False)
+        out[str(sender)] = {"rate": rate.to_dict(),
+                            "hour_profile": hourly_profile(admitted[mask].dt.hour).tolist()}
+    return out
+
+
+def train_arrivals(state: UnitState, units: Collection[str] = ()) -> dict[str, Any]:
+    """The arrivals part of a trained model, as a JSON-ready dict.
+
+    ``units``: the hospital's unit codes at training. Stays admitted by transfer from one of
+    them are not part of the emergency stream: they are forecast through their sending unit
+    (app/forecast/transfers.py), with a stream of their own per sender as its fallback."""
     stays = state.stays
     admitted = _local(stays["admitted_at"], state)
-    emergency = stays["admission_type"] == "emergency"
+    senders = sorted(u for u in units if u != state.unit)
+    came = passed_on_mask(stays, senders)
+    emergency = (stays["admission_type"] == "emergency") & ~came
     first, last = _window(state, FIT_WINDOW_DAYS)
     days, counts = _daily_counts(admitted[emergency], first, last)
     if len(days) < MIN_WINDOW_DAYS:
@@ -252,7 +286,9 @@ def train_arrivals(state: UnitState) -> dict[str, Any]:
             "hour_profile": profile.tolist(),
             "window": [first.isoformat(), last.isoformat()],
             "terms": choice.to_dict(),
+            "not_from": senders,
         },
+        "transfers_in": _transfer_streams(state, came, first, last),
         "capacity": {"excess_beds": excess,
                      "open_share": None if exposure is None else float(np.mean(exposure))},
         "elective": {
@@ -387,7 +423,9 @@ def emergency_means(state: UnitState, arrivals: Mapping[str, Any], span: list[da
         return []
     today = span[0]
     stays = state.stays
-    emergency = stays.loc[stays["admission_type"] == "emergency", "admitted_at"]
+    emergency_rows = ((stays["admission_type"] == "emergency")
+                      & ~passed_on_mask(stays, arrivals["emergency"].get("not_from", ())))
+    emergency = stays.loc[emergency_rows, "admitted_at"]
     admitted = _local(emergency.loc[emergency <= state.as_of], state)
     profile = np.asarray(arrivals["emergency"]["hour_profile"], dtype=float)
     if rate.level_half_life is not None:

@@ -38,7 +38,9 @@ from sqlalchemy.orm import Session
 
 from app.forecast.arrivals import train_arrivals
 from app.forecast.los import LosModel, train_los
+from app.forecast.routing import fit_routing
 from app.forecast.service import ModelRecord, forecast_from_state, forecast_inputs
+from app.forecast.training_data import TooLittleHistory
 from app.state import UnitState, load_state
 from app.stats.kaplan_meier import kaplan_meier
 from app.stats.occupancy import ArrivalStream, BookedAdmissions, occupancy_days
@@ -187,18 +189,42 @@ def _sarimax(series: np.ndarray, steps: int, kmax: int) -> list[np.ndarray]:
     return [_normal_pmf(m, s, kmax) for m, s in zip(means, np.sqrt(variances), strict=True)]
 
 
+def _trained(known: UnitState, units: list[str], morning: datetime) -> ModelRecord:
+    """A model of ``known``'s unit on what it knew (held in memory, as ``train_model``
+    would store it: length of stay, arrivals, routing)."""
+    payload = train_los(known, evaluate=False, compare=False)
+    payload["arrivals"] = train_arrivals(known, units)
+    los = LosModel.from_payload(payload)
+    payload["routing"] = fit_routing(known, units, los.groups, los.design)
+    return ModelRecord(f"backtest-{known.unit}-{morning:%Y%m%d}", morning, payload)
+
+
 def run_backtest(session: Session, unit: str, start: date, end: date, tz: ZoneInfo, *,
                  days: int = 7, at: time = time(8, 0), retrain_days: int = 28,
-                 progress: Progress | None = None) -> dict[str, Any]:
-    """Forecast each local day from ``start`` to ``end`` at clock time ``at``; score all methods."""
+                 progress: Progress | None = None, transfers: str = "pass-on",
+                 baselines: bool = True) -> dict[str, Any]:
+    """Forecast each local day from ``start`` to ``end`` at clock time ``at``; score all methods.
+
+    ``transfers``: ``pass-on`` forecasts the patients other units pass on through those
+    units' own models (retrained on the same mornings, app/forecast/transfers.py);
+    ``stream`` takes them as a stream of the unit's own (the comparison the network issue
+    asks for). ``baselines=False`` scores Morrow's forecast alone."""
+    from app.forecast.transfers import MODES, Sender, sender_units
+    from app.store import repo
+
+    if transfers not in MODES:
+        raise ValueError(f"transfers: one of {MODES}, got {transfers!r}")
     if end < start:
         raise ValueError(f"end {end} is before start {start}")
+    units = [u.code for u in repo.list_units(session)]
     mornings = [localize(datetime.combine(start + timedelta(days=i), at), tz).astimezone(UTC)
                 for i in range((end - start).days + 1)]
     last_needed = census_instants_after(mornings[-1], _census_time(session, unit), tz, days)[-1]
     full = load_state(session, unit, last_needed + timedelta(hours=1), tz, with_history=True)
+    sender_full: dict[str, UnitState] = {}
+    sender_records: dict[str, ModelRecord] = {}
     history_all = census_series(full, last_needed, (last_needed - mornings[0]).days + 400)
-    scored = {m: Scored() for m in METHODS}
+    scored = {m: Scored() for m in (METHODS if baselines else METHODS[:1])}
     record: ModelRecord | None = None
     trained_on: datetime | None = None
     for i, morning in enumerate(mornings):
@@ -206,17 +232,27 @@ def run_backtest(session: Session, unit: str, start: date, end: date, tz: ZoneIn
         if trained_on is None or (morning - trained_on).days >= retrain_days:
             if progress:
                 progress(i, len(mornings), f"training on what was known at {morning:%Y-%m-%d}")
-            payload = train_los(known, evaluate=False, compare=False)
-            payload["arrivals"] = train_arrivals(known)
-            record = ModelRecord(f"backtest-{morning:%Y%m%d}", morning, payload)
+            record = _trained(known, units, morning)
             trained_on = morning
+            for code in sender_units(record.payload) if transfers == "pass-on" else ():
+                if code not in sender_full:
+                    sender_full[code] = load_state(session, code, last_needed
+                                                   + timedelta(hours=1), tz, with_history=True)
+                try:
+                    sender_records[code] = _trained(sender_full[code].known_at(morning), units,
+                                                    morning)
+                except (TooLittleHistory, ValueError):  # too little history there: a stream
+                    sender_records.pop(code, None)
         assert record is not None
-        result = forecast_from_state(known, record, days=days, paths=0)
+        senders = [Sender(code, sender_full[code].known_at(morning),
+                          sender_records[code].payload) if code in sender_records
+                   else Sender(code) for code in sender_units(record.payload) if code != unit]
+        result = forecast_from_state(known, record, days=days, paths=0, senders=senders)
         instants = [datetime.fromisoformat(d["census_at"]) for d in result["days"]]
         outcomes = [full.occupancy_at(pd.Timestamp(h)) for h in instants]
         history = history_all[history_all.index <= pd.Timestamp(morning)]
         pmfs = {"morrow": [np.asarray(d["pmf"]) for d in result["days"]],
-                **_baselines(known, record, instants, history)}
+                **(_baselines(known, record, instants, history) if baselines else {})}
         for method, per_day in pmfs.items():
             for k, (pmf, y) in enumerate(zip(per_day, outcomes, strict=True), start=1):
                 scored[method].horizon.append(k)
@@ -224,7 +260,9 @@ def run_backtest(session: Session, unit: str, start: date, end: date, tz: ZoneIn
                 scored[method].outcome.append(int(y))
         if progress:
             progress(i + 1, len(mornings), f"{morning:%Y-%m-%d}")
-    return summarise(unit, start, end, days, scored)
+    summary = summarise(unit, start, end, days, scored)
+    summary["transfers"] = transfers
+    return summary
 
 
 def _census_time(session: Session, unit: str) -> time:

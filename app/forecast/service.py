@@ -8,6 +8,7 @@ would have been made then from the same data.
 from __future__ import annotations
 
 import json
+from collections.abc import Sequence
 from dataclasses import dataclass, replace
 from datetime import UTC, date, datetime, time, timedelta
 from functools import cached_property
@@ -29,20 +30,21 @@ from app.forecast.arrivals import (
 from app.forecast.los import LosModel, predict_stays, train_los
 from app.forecast.models import newest_model, save_model
 from app.forecast.newcomer_clock import elapsed
+from app.forecast.routing import fit_routing
 from app.state import UnitState, load_state
 from app.stats.loss import LOSS_PATHS, LossDraws, draw_losses
 from app.stats.occupancy import (
     ArrivalStream,
     BookedAdmissions,
     Newcomers,
-    PathDraws,
     StayMixture,
     day_to_json,
-    draw_paths,
     with_current,
-    with_exact_marginals,
 )
 from app.stats.occupancy import newcomers as newcomers_present
+from app.stats.occupancy_paths import PathDraws, draw_paths, with_exact_marginals
+from app.stats.transfer_presence import PassedOn
+from app.store import repo
 from app.store.models import StoredForecast
 from app.timeutil import census_instants_after, iso, localize
 
@@ -71,7 +73,10 @@ def train_model(session: Session, unit: str, until: datetime, tz: ZoneInfo,
     """Fit the length-of-stay and arrivals models on what was known at ``until``; store them."""
     state = load_state(session, unit, until, tz, with_history=True)
     payload = train_los(state, test_days=test_days)
-    payload["arrivals"] = train_arrivals(state)
+    units = [u.code for u in repo.list_units(session)]
+    payload["arrivals"] = train_arrivals(state, units)
+    los = LosModel.from_payload(payload)
+    payload["routing"] = fit_routing(state, units, los.groups, los.design)
     model_id = save_model(session, unit, state.as_of.to_pydatetime(), payload)
     return model_id, payload
 
@@ -176,7 +181,17 @@ def forecast(session: Session, unit: str, as_of: datetime, tz: ZoneInfo, *,
     as_of = as_of.astimezone(UTC)
     record = model_for(session, unit, as_of)
     state = load_state(session, unit, as_of, tz, with_history=False)
-    return forecast_from_state(state, record, days=days, paths=paths, seed=seed)
+    return forecast_from_state(state, record, days=days, paths=paths, seed=seed,
+                               senders=senders_of(session, state, record))
+
+
+def senders_of(session: Session, state: UnitState, record: ModelRecord) -> list[Any]:
+    """The units passing patients on to ``state.unit``, each with its state and model at the
+    same as_of (app/forecast/transfers.py)."""
+    from app.forecast.transfers import senders_for
+
+    return senders_for(session, state.unit, state.as_of.to_pydatetime(), state.tz,
+                       record.payload)
 
 
 @dataclass(frozen=True, eq=False)
@@ -220,6 +235,8 @@ class Backdrop:
     draws: PathDraws | None
     # Paths that turn arrivals away at their arrival instant (None: no ceiling).
     losses: LossDraws | None = None
+    # Patients other units pass on (None: no sending unit; app/forecast/transfers.py).
+    passed: PassedOn | None = None
 
     @cached_property
     def newcomers(self) -> Newcomers:
@@ -229,8 +246,14 @@ class Backdrop:
 
 
 def forecast_backdrop(state: UnitState, record: ModelRecord, *, days: int = DEFAULT_DAYS,
-                      paths: int = WEEK_PATHS, seed: int = 0) -> Backdrop:
-    """Everything but the current patients' probabilities, for ``days`` census instants."""
+                      paths: int = WEEK_PATHS, seed: int = 0,
+                      senders: Sequence[Any] | None = None) -> Backdrop:
+    """Everything but the current patients' probabilities, for ``days`` census instants.
+
+    ``senders``: the units passing patients on to this one at the same as_of
+    (:func:`senders_of`); their current patients and admissions to come join this unit's
+    forecast (app/forecast/transfers.py). None (a caller without the store): the transfers
+    the model learnt come as streams of this unit's own."""
     los = LosModel.from_payload(record.payload)
     arrivals = record.payload["arrivals"]
     instants = census_instants_after(state.as_of.to_pydatetime(), state.census_time, state.tz,
@@ -248,9 +271,20 @@ def forecast_backdrop(state: UnitState, record: ModelRecord, *, days: int = DEFA
                               arrivals["elective"]["hour_profile"], None,
                               _newcomer_stay(los, "elective"))
     census_at = np.array([_days_after(h, state.as_of) for h in instants])
+    passed: PassedOn | None = None
+    fallback: list[ArrivalStream] = []
+    if senders is None:
+        from app.forecast.transfers import Sender, sender_units
+
+        senders = [Sender(u) for u in sender_units(record.payload) if u != state.unit]
+    if senders:
+        from app.forecast.transfers import passed_on
+
+        passed, fallback = passed_on(state, los, record.payload, instants, census_at,
+                                     senders, _hourly_stream)
     booked, streams = _with_clock(los, state, census_at,
                                   _booked(state, los, arrivals["elective"], local_days[-1]),
-                                  [emergency, unbooked])
+                                  [emergency, unbooked, *fallback])
     beds = [state.beds_on(d) for d in local_days]
     stay_ids = tuple(str(s) for s in state.stays.loc[state.present_mask(state.as_of), "stay_id"])
     draws = None
@@ -262,9 +296,14 @@ def forecast_backdrop(state: UnitState, record: ModelRecord, *, days: int = DEFA
     if any(c is not None for c in limits):
         losses = draw_losses(booked, streams, census_at, LOSS_PATHS,
                              np.random.default_rng(seed), seed=seed)
+    if passed is not None:
+        from app.forecast.transfers import fallback_means
+
+        passed = replace(passed, fallback_means=fallback_means(streams, census_at))
     return Backdrop(unit=state.unit, as_of=state.as_of, stay_ids=stay_ids, los=los,
                     instants=instants, census_at=census_at, local_days=local_days, beds=beds,
-                    booked=booked, streams=streams, limits=limits, draws=draws, losses=losses)
+                    booked=booked, streams=streams, limits=limits, draws=draws, losses=losses,
+                    passed=passed)
 
 
 def _limits(beds: list[int | None], excess: int | None, in_unit: int) -> list[int | None]:
@@ -332,16 +371,20 @@ def expected_admissions(inputs: ForecastInputs) -> list[float]:
 
 
 def forecast_from_state(state: UnitState, record: ModelRecord, *, days: int = DEFAULT_DAYS,
-                        paths: int = WEEK_PATHS, seed: int = 0) -> dict[str, Any]:
+                        paths: int = WEEK_PATHS, seed: int = 0,
+                        senders: Sequence[Any] | None = None) -> dict[str, Any]:
     """The forecast from an already loaded state (the page reuses it after a score entry)."""
-    return forecast_with_inputs(state, record, days=days, paths=paths, seed=seed)[0]
+    return forecast_with_inputs(state, record, days=days, paths=paths, seed=seed,
+                                senders=senders)[0]
 
 
 def forecast_with_inputs(state: UnitState, record: ModelRecord, *, days: int = DEFAULT_DAYS,
-                         paths: int = WEEK_PATHS, seed: int = 0
+                         paths: int = WEEK_PATHS, seed: int = 0,
+                         senders: Sequence[Any] | None = None
                          ) -> tuple[dict[str, Any], ForecastInputs]:
     """The forecast JSON and the inputs it was computed from (for the page's day table)."""
-    backdrop = forecast_backdrop(state, record, days=days, paths=paths, seed=seed)
+    backdrop = forecast_backdrop(state, record, days=days, paths=paths, seed=seed,
+                                 senders=senders)
     return forecast_on(backdrop, state, record)
 
 
@@ -356,12 +399,20 @@ def forecast_on(backdrop: Backdrop, state: UnitState, record: ModelRecord
         raise ValueError("state: other current stays than the backdrop's")
     p_present = inputs.predictions.p_present
     results = with_current(p_present, backdrop.newcomers, inputs.beds, backdrop.limits,
-                           draws=backdrop.losses, p_grid=inputs.p_grid)
+                           draws=backdrop.losses, p_grid=inputs.p_grid,
+                           passed=backdrop.passed)
     out_days = []
-    for instant, local_day, bed_count, result in zip(inputs.instants, inputs.local_days,
-                                                     inputs.beds, results, strict=True):
-        out_days.append({"date": local_day.isoformat(), "census_at": iso(instant, state.tz),
-                         "beds": bed_count, **day_to_json(result)})
+    for k, (instant, local_day, bed_count, result) in enumerate(zip(
+            inputs.instants, inputs.local_days, inputs.beds, results, strict=True)):
+        day = {"date": local_day.isoformat(), "census_at": iso(instant, state.tz),
+               "beds": bed_count, **day_to_json(result)}
+        if backdrop.passed is not None:
+            offered = backdrop.newcomers.arriving_mean[k].get("emergency", 0.0)
+            kept = result.components["emergency"] - (result.passed_mean or 0.0)
+            day["transfers_in"] = backdrop.passed.by_unit(
+                k, result.passed_mean, min(1.0, kept / offered) if offered > 0 else 1.0)
+            day["moved_in"] = backdrop.passed.current_rows(k)
+        out_days.append(day)
     payload: dict[str, Any] = {
         "format": FORMAT,
         "unit": state.unit,

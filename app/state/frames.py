@@ -23,7 +23,7 @@ import numpy as np
 import pandas as pd
 
 STAY_COLUMNS = ["stay_id", "admitted_at", "discharged_at", "admission_type", "outcome", "age",
-                "sex", "specialty", "source", "booking_id"]
+                "sex", "specialty", "source", "booking_id", "patient", "from_unit", "to_unit"]
 OBSERVATION_COLUMNS = ["stay_id", "observed_at", "name", "value", "recorded_at"]
 BOOKING_COLUMNS = ["booking_id", "booked_at", "planned_date", "age", "sex", "specialty", "source",
                    "procedure", "cancelled_at"]
@@ -77,6 +77,8 @@ class UnitState:
         later = stays["discharged_at"].notna() & (stays["discharged_at"] > moment)
         stays.loc[later, "discharged_at"] = pd.NaT
         stays.loc[later, "outcome"] = None
+        if "to_unit" in stays:
+            stays.loc[later, "to_unit"] = None
         obs = self.observations
         obs = obs.loc[(obs["observed_at"] <= moment) & (obs["recorded_at"] <= moment)
                       & obs["stay_id"].isin(stays["stay_id"])]

@@ -101,6 +101,7 @@ def load_state(session: Session, unit: str, as_of: datetime, tz: ZoneInfo, *,
     stays["admitted_at"] = _utc_column(list(stays["admitted_at"]))
     stays["discharged_at"] = _utc_column(discharged)
     stays["outcome"] = stays["outcome"].where(stays["discharged_at"].notna(), None)
+    stays["to_unit"] = stays["to_unit"].where(stays["discharged_at"].notna(), None)
     stays["age"] = pd.to_numeric(stays["age"], errors="coerce").astype(float)
 
     observations = _observations(session, unit, as_of, current_only=not with_history)

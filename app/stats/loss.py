@@ -16,7 +16,7 @@ points a day). On each of ``n`` paths
 - a booking goes ahead with its probability and stays a drawn length (never turned away);
   lengths are drawn by inverse transform on the grid (a uniform u against the stay's
   survival between grid instants, on the unit's clock);
-- arrivals are drawn slot by slot as in :func:`app.stats.occupancy.draw_paths` (a day's
+- arrivals are drawn slot by slot as in :func:`app.stats.occupancy_paths.draw_paths` (a day's
   gamma-distributed rate where the stream is negative binomial), each with a drawn length of
   stay on the unit's clock;
 

@@ -15,9 +15,9 @@ Three independent parts add up at each census instant h_k (METHODS.md section 3)
   independent, so their pmfs are convolved.
 
 The parts are convolved exactly. Questions about several days together ("full on any day this
-week") need joint paths, drawn by :func:`simulate_paths` from the same inputs: a current stay
-keeps one uniform draw for the week (present at h_k while U < p_i(h_k)), so its days are
-consistent; arrivals and bookings draw a whole stay each.
+week") need joint paths, drawn by :mod:`app.stats.occupancy_paths` from the same inputs: a
+current stay keeps one uniform draw for the week (present at h_k while U < p_i(h_k)), so its
+days are consistent; so does each arrival and booking (present while U < S(h_k - a)).
 
 A unit with a ceiling (``limits``: the most patients it holds) turns an arrival away when it
 comes to a full unit, which the sum above ignores. Current stays and bookings are never turned
@@ -68,13 +68,14 @@ from app.stats.poisson_binomial import (
     poisson_binomial_pmf,
     poisson_pmf,
 )
+from app.stats.transfer_presence import PassedOn
 
 FloatArray = npt.NDArray[np.float64]
 QUANTILE_LEVELS = (0.025, 0.05, 0.1, 0.25, 0.5, 0.75, 0.9, 0.95, 0.975)
 
-__all__ = ["ArrivalStream", "BookedAdmissions", "Newcomers", "OccupancyDay", "PathDraws",
-           "StayDistribution", "StayMixture", "draw_paths", "newcomers", "occupancy_days",
-           "simulate_paths", "stream_presence", "with_current", "with_exact_marginals"]
+__all__ = ["ArrivalStream", "BookedAdmissions", "Newcomers", "OccupancyDay",
+           "StayDistribution", "StayMixture", "newcomers", "occupancy_days",
+           "stream_presence", "with_current"]
 
 
 class StayDistribution(Protocol):
@@ -206,6 +207,8 @@ class OccupancyDay:
     quantiles: dict[str, int]
     p_over_capacity: float | None
     components: dict[str, float]
+    # Patients passed on by other units expected in at the census (after the ceiling).
+    passed_mean: float | None = None
 
 
 def _sf_once(stay: Any, lags: FloatArray) -> FloatArray:
@@ -369,11 +372,21 @@ def occupancy_days(
 
 def with_current(p_current: npt.ArrayLike, others: Newcomers, beds: Sequence[int | None],
                  limits: Sequence[int | None] | None = None, *, draws: LossDraws | None = None,
-                 p_grid: npt.ArrayLike | None = None) -> list[OccupancyDay]:
+                 p_grid: npt.ArrayLike | None = None,
+                 passed: PassedOn | None = None) -> list[OccupancyDay]:
     """Add the current stays (Poisson-binomial) to the newcomers, instant by instant, and
     turn arrivals away at the ceiling: at the instant they come, by the paths ``draws``
     (:mod:`app.stats.loss`; ``p_grid`` the current stays on their grid, interpolated from
-    ``p_current`` if None), or without draws at the census instant (``_within_limit``)."""
+    ``p_current`` if None), or without draws at the census instant (``_within_limit``).
+
+    ``passed``: patients other units pass on (:mod:`app.stats.transfer_presence`); like
+    current stays and bookings they are never turned away (a transfer waits in its unit),
+    and they count in the ``emergency`` component. Without draws they take room from the
+    arrivals at the census instant (``_within_limit``); with draws the paths do not follow
+    them (a passed-on patient's presence rises and falls, which the paths' current stays
+    cannot), so their count is added to the unit's corrected one: the arrivals turned away
+    are those the unit's own patients alone would turn away, which understates the turning
+    away when many transfers come in."""
     n_instants = len(others.booked)
     p_now = np.asarray(p_current, dtype=float).reshape(-1, n_instants)
     ceiling = [None] * n_instants if limits is None else list(limits)
@@ -401,12 +414,49 @@ def with_current(p_current: npt.ArrayLike, others: Newcomers, beds: Sequence[int
                       "elective": others.booked_mean[k]}
         for name, value in stream_mean.items():
             components[name] += value
+        passed_mean = None
+        if passed is not None:
+            pmf, passed_mean = waiting_when_full(pmf, passed.pmf(k), limit)
+            components["emergency"] += passed_mean
         quantiles = dict(zip((f"{q:g}" for q in QUANTILE_LEVELS),
                              (int(v) for v in pmf_quantile(pmf, QUANTILE_LEVELS)), strict=True))
         over = None if beds[k] is None else float(pmf_sf_over(pmf, beds[k]))
         out.append(OccupancyDay(pmf=pmf, mean=pmf_mean(pmf), quantiles=quantiles,
-                                p_over_capacity=over, components=components))
+                                p_over_capacity=over, components=components,
+                                passed_mean=passed_mean))
     return out
+
+
+def waiting_when_full(own: FloatArray, passed: FloatArray, limit: int | None
+                      ) -> tuple[FloatArray, float]:
+    """The count with patients passed on by other units added, and their expected number in.
+
+    ``own``: the unit's count without them (its ceiling already applied to its arrivals);
+    ``passed``: the count the senders would pass on by the census instant. A transfer is
+    never turned away, but it waits in its unit while this one is at its ceiling (exit
+    block): with A patients of its own and B passed on, A + min(B, (limit - A)+) are in.
+    Without a ceiling, A + B."""
+    a = np.asarray(own, dtype=float)
+    b = np.asarray(passed, dtype=float)
+    if limit is None:
+        pmf = convolve_pmfs(a, b)
+        return pmf, pmf_mean(b)
+    out = np.zeros(max(a.size + b.size - 1, 1))
+    b_tail = np.cumsum(b[::-1])[::-1]       # P(B >= y)
+    y = np.arange(b.size)
+    expected = 0.0
+    for count in np.flatnonzero(a > 0):
+        room = max(int(limit) - int(count), 0)
+        if room + 1 >= b.size:
+            out[count:count + b.size] += a[count] * b
+            expected += float(a[count] * (y * b).sum())
+            continue
+        out[count:count + room] += a[count] * b[:room]
+        out[count + room] += a[count] * b_tail[room]
+        expected += float(a[count] * ((y[:room] * b[:room]).sum() + room * b_tail[room]))
+    nonzero = np.flatnonzero(out > 0)
+    out = out[: int(nonzero[-1]) + 1] if nonzero.size else np.ones(1)
+    return out / out.sum(), expected
 
 
 def _blocked(exact: FloatArray, stream_mean: Mapping[str, float], lost: Losses, k: int,
@@ -425,163 +475,6 @@ def _blocked(exact: FloatArray, stream_mean: Mapping[str, float], lost: Losses, 
     if means and total > 0:
         means = {name: v + gap * v / total for name, v in means.items()}
     return pmf, means
-
-
-@dataclass(frozen=True, eq=False)
-class PathDraws:
-    """The random part of ``n_paths`` joint paths, drawn once: one uniform per path and
-    current stay, the bookings' counts, and every arrival (its path, time and presence at
-    each instant). :meth:`counts` adds any current probabilities and applies the ceiling."""
-
-    stay_draws: FloatArray
-    booked_counts: npt.NDArray[np.int64]
-    path: npt.NDArray[np.int64]
-    arrive: FloatArray
-    present: npt.NDArray[np.bool_]
-    tie_break: FloatArray
-
-    def counts(self, p_current: npt.ArrayLike,
-               limits: Sequence[int | None] | None = None) -> npt.NDArray[np.int64]:
-        """Occupancy along every path, shape (n_paths, K).
-
-        With ``limits``, arrivals that would take a path over the ceiling at a census
-        instant are turned away, the latest first, and stay away later (where only earlier
-        arrivals are left to take off, they leave early: a full unit moves a patient out to
-        make room)."""
-        counts = self.booked_counts.copy()
-        n_paths, n_instants = counts.shape
-        p_now = np.asarray(p_current, dtype=float).reshape(-1, n_instants)
-        if p_now.shape[0] != self.stay_draws.shape[1]:
-            raise ValueError(f"p_current: drawn for {self.stay_draws.shape[1]} stays, "
-                             f"got {p_now.shape[0]}")
-        ceiling = [None] * n_instants if limits is None else list(limits)
-        admitted = np.ones(self.path.size, dtype=bool)
-        for k in range(n_instants):
-            checkpoint()
-            counts[:, k] += (self.stay_draws < p_now[:, k]).sum(axis=1)
-            counts[:, k] += np.bincount(self.path[admitted & self.present[:, k]],
-                                        minlength=n_paths)
-            limit = ceiling[k]
-            if limit is not None:
-                _turn_away(counts[:, k], int(limit), self.path, self.arrive,
-                           self.present[:, k], admitted)
-        return counts
-
-
-def draw_paths(
-    n_stays: int,
-    booked: BookedAdmissions,
-    streams: Sequence[ArrivalStream],
-    census_at: npt.ArrayLike,
-    n_paths: int,
-    rng: np.random.Generator,
-) -> PathDraws:
-    """Draw the joint paths once; :meth:`PathDraws.counts` adds any current probabilities."""
-    h = np.asarray(census_at, dtype=float)
-    stay_draws = rng.random((n_paths, n_stays)) if n_stays else np.zeros((n_paths, 0))
-    counts = np.zeros((n_paths, h.size), dtype=np.int64)
-    booked_lags = booked.lags(h)
-    for j, (g, a, stay) in enumerate(zip(booked.p_go, booked.admit_at, booked.stays,
-                                         strict=True)):
-        goes = rng.random(n_paths) < g
-        length = np.asarray(stay.sample(n_paths, rng), dtype=float)
-        counts += (goes[:, None] & (h[None, :] >= a)
-                   & (booked_lags[j][None, :] < length[:, None]))
-    drawn = [_stream_arrivals(stream, h, n_paths, rng) for stream in streams]
-    path = np.concatenate([d[0] for d in drawn]) if drawn else np.zeros(0, dtype=np.int64)
-    arrive = np.concatenate([d[1] for d in drawn]) if drawn else np.zeros(0)
-    present = (np.concatenate([d[2] for d in drawn]) if drawn
-               else np.zeros((0, h.size), dtype=bool))
-    return PathDraws(stay_draws, counts, path, arrive, present, rng.random(n_paths))
-
-
-def with_exact_marginals(counts: npt.NDArray[np.int64], pmfs: Sequence[FloatArray],
-                         tie_break: FloatArray) -> npt.NDArray[np.int64]:
-    """Paths whose count on each night follows that night's exact pmf, in the paths' order.
-
-    Under a ceiling the paths turn the latest arrivals away at census instants, which piles
-    the overflow at the ceiling (a censored count), while the exact forecast truncates the
-    arrivals (the loss model's answer): on the demo's critical care unit the paths put twice
-    the exact chance on a full night. Replacing each night's counts by the exact quantile at
-    their rank keeps the paths' dependence between nights and the exact chance for each night
-    (an empirical-copula reordering; ties in a count broken by ``tie_break``, one uniform per
-    path)."""
-    out = np.empty_like(counts)
-    n = counts.shape[0]
-    levels = (np.arange(n) + 0.5) / n
-    for k, pmf in enumerate(pmfs):
-        order = np.lexsort((tie_break, counts[:, k]))
-        out[order, k] = pmf_quantile(pmf, levels)
-    return out
-
-
-def simulate_paths(
-    p_current: npt.ArrayLike,
-    booked: BookedAdmissions,
-    streams: Sequence[ArrivalStream],
-    census_at: npt.ArrayLike,
-    n_paths: int,
-    rng: np.random.Generator,
-    limits: Sequence[int | None] | None = None,
-) -> npt.NDArray[np.int64]:
-    """Occupancy at every instant along ``n_paths`` joint paths; shape (n_paths, K), with
-    arrivals turned away at ``limits`` (:meth:`PathDraws.counts`)."""
-    h = np.asarray(census_at, dtype=float)
-    p_now = np.asarray(p_current, dtype=float).reshape(-1, h.size)
-    return draw_paths(p_now.shape[0], booked, streams, h, n_paths, rng).counts(p_now, limits)
-
-
-def _stream_arrivals(stream: ArrivalStream, h: FloatArray, n_paths: int,
-                     rng: np.random.Generator
-                     ) -> tuple[npt.NDArray[np.int64], FloatArray, npt.NDArray[np.bool_]]:
-    """One stream's arrivals on every path: path index, arrival time, present at each instant."""
-    at = np.asarray(stream.slot_at, dtype=float)
-    mean = np.asarray(stream.slot_mean, dtype=float)
-    day = np.asarray(stream.slot_day, dtype=int)
-    lags = stream.lags(h) if at.size else np.zeros((0, h.size))
-    paths, times, present = [], [], []
-    for d in np.unique(day):
-        slots = np.flatnonzero(day == d)
-        day_mean = mean[slots].sum()
-        if day_mean <= 0:
-            continue
-        rate = np.full(n_paths, day_mean)
-        if stream.size is not None:
-            rate = rate * rng.gamma(stream.size, 1.0 / stream.size, size=n_paths)
-        n = rng.poisson(rate)
-        total = int(n.sum())
-        if total == 0:
-            continue
-        slot = slots[rng.choice(slots.size, size=total, p=mean[slots] / day_mean)]
-        arrive = at[slot]
-        length = np.asarray(stream.stay.sample(total, rng), dtype=float)
-        paths.append(np.repeat(np.arange(n_paths), n))
-        times.append(arrive)
-        present.append((h[None, :] > arrive[:, None]) & (lags[slot] < length[:, None]))
-    if not paths:
-        return np.zeros(0, dtype=np.int64), np.zeros(0), np.zeros((0, h.size), dtype=bool)
-    return np.concatenate(paths), np.concatenate(times), np.concatenate(present)
-
-
-def _turn_away(count: npt.NDArray[np.int64], limit: int, path: npt.NDArray[np.int64],
-               arrive: FloatArray, present: npt.NDArray[np.bool_],
-               admitted: npt.NDArray[np.bool_]) -> None:
-    """Within each path over ``limit``, mark its latest arrivals still present as turned away
-    (``admitted`` False) and take them off ``count``, in place. Current patients and bookings
-    are never taken off, so a path they alone fill stays over."""
-    over = np.maximum(count - limit, 0)
-    if not over.any():
-        return
-    idx = np.flatnonzero(admitted & present & (over[path] > 0))
-    if not idx.size:
-        return
-    idx = idx[np.lexsort((-arrive[idx], path[idx]))]
-    p = path[idx]
-    first = np.r_[0, np.flatnonzero(p[1:] != p[:-1]) + 1]
-    rank = np.arange(idx.size) - np.repeat(first, np.diff(np.r_[first, idx.size]))
-    away = idx[rank < over[p]]
-    admitted[away] = False
-    count -= np.bincount(path[away], minlength=count.size)
 
 
 def day_to_json(day: OccupancyDay) -> Mapping[str, Any]:

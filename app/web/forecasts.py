@@ -30,6 +30,7 @@ from app.forecast.service import (
     forecast_backdrop,
     forecast_on,
     model_for,
+    senders_of,
     store_forecast,
 )
 from app.state import UnitState, load_state, with_current_observations
@@ -121,7 +122,8 @@ def _backdrop(session: Session, key: tuple[Any, ...], record: ModelRecord | None
     if found is None:
         _, unit, _, moment, _, _ = key
         state = load_state(session, unit, moment, get_settings().tz, with_history=False)
-        backdrop = None if record is None else forecast_backdrop(state, record, days=days)
+        backdrop = None if record is None else forecast_backdrop(
+            state, record, days=days, senders=senders_of(session, state, record))
         _backdrops[key] = (backdrop, state)
         while len(_backdrops) > BACKDROPS:
             _backdrops.popitem(last=False)

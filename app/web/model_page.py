@@ -26,6 +26,7 @@ from app.forecast.backtest_jobs import (
 )
 from app.forecast.los import LosModel
 from app.forecast.models import newest_model
+from app.forecast.routing import Routing
 from app.store import repo
 from app.store.models import StoredForecast
 from app.web import figures, model_track
@@ -83,7 +84,20 @@ def _model_part(los: LosModel, model_id: str, trained_until: Any,
                   "window": payload.get("window"), "uses": payload["los"].get("uses", {})},
         "metrics": payload.get("metrics", {}), "nodes": _tree_nodes(los),
         "groups": _groups(los), "arrivals": payload.get("arrivals", {}),
+        "routing": _routing(los, payload),
     }
+
+
+def _routing(los: LosModel, payload: dict[str, Any]) -> dict[str, Any] | None:
+    """Where the unit's discharges went, by admission group (app/forecast/routing.py); None
+    for a model trained before routing was learnt."""
+    routing = Routing.from_payload(payload)
+    if routing is None:
+        return None
+    rules = {g.node: g.rule for g in los.groups.groups}
+    return {"destinations": list(routing.destinations), "rows": routing.table(rules),
+            "prior": payload["routing"].get("prior_strength"),
+            "senders": {u: int(v.get("n", 0)) for u, v in routing.received.items()}}
 
 
 def _record_part(session: SessionDep, unit: str, now: datetime) -> dict[str, Any]:

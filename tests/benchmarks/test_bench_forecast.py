@@ -12,7 +12,7 @@ import pandas as pd
 
 from app.forecast.service import forecast_from_state, forecast_inputs, model_for
 from app.state import load_state
-from app.stats.occupancy import simulate_paths
+from app.stats.occupancy_paths import simulate_paths
 from app.store import db
 from tests.benchmarks.conftest import best_of
 from tests.conftest import UTC_ZONE

@@ -13,7 +13,8 @@ import pytest
 from scipy import integrate
 
 from app.forecast.newcomer_clock import clock_profile, elapsed
-from app.stats.occupancy import ArrivalStream, BookedAdmissions, draw_paths, stream_presence
+from app.stats.occupancy import ArrivalStream, BookedAdmissions, stream_presence
+from app.stats.occupancy_paths import draw_paths
 from app.stats.phasetype import Coxian
 from app.stats.survival_tree import DischargeProfile
 

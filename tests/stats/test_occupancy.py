@@ -11,12 +11,10 @@ from app.stats.occupancy import (
     ArrivalStream,
     BookedAdmissions,
     StayMixture,
-    draw_paths,
     occupancy_days,
-    simulate_paths,
     stream_presence,
-    with_exact_marginals,
 )
+from app.stats.occupancy_paths import draw_paths, simulate_paths, with_exact_marginals
 from app.stats.phasetype import Coxian
 
 NO_BOOKINGS = BookedAdmissions((), (), ())

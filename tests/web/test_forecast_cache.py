@@ -12,11 +12,13 @@ from datetime import UTC, datetime, timedelta
 from pathlib import Path
 
 import pytest
+from sqlalchemy import select
 
 from app.config import get_settings
 from app.forecast.service import forecast
 from app.ingest import import_file
 from app.store import db
+from app.store.models import Stay
 from app.web import forecasts
 from app.web.forecasts import current, forecast_moment
 from tests.conftest import UTC_ZONE
@@ -62,7 +64,12 @@ def test_a_score_reuses_the_backdrop_and_equals_a_full_forecast(
     assert before.forecast is not None
     stays = before.forecast["stays"]
     # The emergency patient most likely to leave tonight: a very high SOFA should keep them.
-    target = max((s for s in stays), key=lambda s: 1 - s["p_present"][0])
+    # (Only an emergency one: the demo's tree splits elective stays on no score.)
+    with db.session_scope(trained) as session:
+        emergency = {s.stay_id for s in session.scalars(
+            select(Stay).where(Stay.unit == UNIT, Stay.admission_type == "emergency"))}
+    target = max((s for s in stays if s["stay_id"] in emergency),
+                 key=lambda s: 1 - s["p_present"][0])
     backdrops = dict(forecasts._backdrops)
     row = (f"stay_id,observed_at,name,value,recorded_at\n{target['stay_id']},"
            f"{DEMO_NOW.isoformat()},sofa,20,{DEMO_NOW.isoformat()}\n").encode()
