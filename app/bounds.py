@@ -57,6 +57,11 @@ MAX_PLAN_YEARS = 10
 MIN_PLAN_REPLICATIONS, MAX_PLAN_REPLICATIONS = 2, 100
 MAX_BEDS = 1000
 MAX_SEED = 2**32 - 1
+# Units planned together (app/stats/planning/network.py): the work grows with every unit's
+# arrivals; ten units is a whole small hospital.
+MAX_NETWORK_UNITS = 10
+# Staffed beds added to (or taken from) a unit in a plan of units together.
+MAX_BED_CHANGE = 50
 
 
 # -- alert levels ----------------------------------------------------------------------------
@@ -215,6 +220,11 @@ def check_plan_days(days: int, field: str = "years") -> int:
         raise OutOfBounds(f"{field}: {days / 365:g} years ({days} days) is outside the allowed "
                           f"range, a week to {MAX_PLAN_YEARS} years")
     return days
+
+
+def check_bed_change(value: int, field: str = "bed change") -> int:
+    """Beds added to (or, negative, taken from) a unit's staffed beds in a plan."""
+    return check_whole(value, field, -MAX_BED_CHANGE, MAX_BED_CHANGE)
 
 
 def check_alert_levels(warning: float, alarm: float) -> tuple[float, float]:

@@ -151,6 +151,12 @@ def cmd_plan(args: argparse.Namespace) -> int:
     from app.forecast.planning_report import PlanSettings, run_plan
     from app.forecast.service import NoModel
 
+    if (args.unit is None) == (args.units is None):
+        return _error("give either --unit (one unit) or --units (several together)")
+    if args.units is not None:
+        from app.cli.plan_network import cmd_plan_network
+
+        return cmd_plan_network(args)
     try:
         settings = PlanSettings(
             target=parse_share(args.target, "--target"),
@@ -271,7 +277,13 @@ def register(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
         epilog="Scenario options can be repeated; each is one scenario. Examples: "
                "--scale-arrivals emergency=+10%%  --scale-stay longest=0.8  "
                "--move-share G1:G2=20%%  --move-electives Mon:Fri=0.5")
-    p.add_argument("--unit", required=True, type=unit_code_arg)
+    p.add_argument("--unit", default=None, type=unit_code_arg)
+    p.add_argument("--units", default=None,
+                   help="plan several units together (KV-CRIT,KV-SURG): routing between them "
+                        "and waits to move on; then --beds takes UNIT=+N (see plan_network)")
+    p.add_argument("--vary", default=None,
+                   help="with --units: the unit whose extra beds 0..4 make the curve "
+                        "(default: the first unit in --beds)")
     p.add_argument("--target", default="0.05",
                    help="largest acceptable share of arrivals finding no bed (0.05 or 5%%)")
     p.add_argument("--years", default="2", help="years simulated per replication (default 2)")
@@ -280,7 +292,7 @@ def register(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
     p.add_argument("--seed", type=int, default=0)
     p.add_argument("--beds", default=None,
                    help="bed counts of the table: 16, 12-24 or 12,14,16 (default: a range "
-                        "around the demand)")
+                        "around the demand); with --units: KV-SURG=+2 (more staffed beds)")
     p.add_argument("--compare-at", type=int, default=None, dest="compare_at",
                    help="beds at which scenarios are compared (default: staffed beds now)")
     p.add_argument("--scale-arrivals", action="append", default=[], metavar="TYPE=FACTOR",

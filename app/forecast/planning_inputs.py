@@ -24,6 +24,10 @@ Booked electives
     the arrivals model uses (``ELECTIVE_WINDOW_DAYS``), and as the cancellation probability the
     share of those bookings that did not become an admission (cancelled or not come). Elective
     admissions without a booking in that window form a separate Poisson stream by weekday.
+Transfers in
+    Patients passed on from another unit of the hospital, which a model trained with the
+    hospital's units keeps apart from its emergency stream: one stream per sending unit
+    (:func:`transfer_streams`), so the unit planned alone still receives them.
 Beds and census
     The staffed beds on the day planned from (the bed plan), and the unit's census clock time.
 
@@ -33,7 +37,7 @@ and the weekday effect on discharges (stays run for their drawn length).
 
 from __future__ import annotations
 
-from collections.abc import Mapping
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from datetime import date, datetime, timedelta
 from typing import Any
@@ -47,14 +51,21 @@ from app.forecast.arrivals import ELECTIVE_WINDOW_DAYS, _window, emergency_rate
 from app.forecast.los import LosModel
 from app.forecast.service import ModelRecord, model_for
 from app.state import UnitState, load_state
+from app.stats.arrivals import DailyRateModel
 from app.stats.planning import DemandStream, ElectiveList, PatientGroup, PlanningInput
 
-__all__ = ["UnitDemand", "build_planning_input", "unit_planning_input", "weekday_rates"]
+__all__ = ["UnitDemand", "build_planning_input", "transfer_streams", "unit_planning_input",
+           "weekday_rates"]
 
 DAYS_PER_YEAR_OF_WEEKDAYS = 364
 EMERGENCY_STREAM = "emergency"
 BOOKED_STREAM = "booked electives"
 UNBOOKED_STREAM = "unbooked electives"
+TRANSFER_STREAM = "transfers from"
+# The admission type of the transfer streams in planning (their stays are emergency
+# admissions in the data): a scenario of "10% more emergency admissions" leaves them alone,
+# and "10% more transfer admissions" is a scenario of its own.
+TRANSFER_TYPE = "transfer"
 
 
 @dataclass(frozen=True, eq=False)
@@ -126,16 +137,51 @@ class UnitDemand:
 
 
 def weekday_rates(arrivals: Mapping[str, Any], start: date,
-                  days: int = DAYS_PER_YEAR_OF_WEEKDAYS) -> tuple[float, ...]:
+                  days: int = DAYS_PER_YEAR_OF_WEEKDAYS, *,
+                  rate: DailyRateModel | None = None) -> tuple[float, ...]:
     """Mean expected emergency admissions per day by weekday (Monday first) over ``days``
-    days from ``start`` (a whole number of weeks: each weekday equally often)."""
+    days from ``start`` (a whole number of weeks: each weekday equally often); of ``rate``
+    instead of the emergency stream's when given."""
     if days <= 0 or days % 7:
         raise ValueError(f"days: must be a positive multiple of 7, got {days!r}")
-    rate = emergency_rate(arrivals)
+    rate = emergency_rate(arrivals) if rate is None else rate
     span = [start + timedelta(days=i) for i in range(days)]
     means = np.asarray(rate.mean(span), dtype=float)
     weekday = np.asarray([d.weekday() for d in span])
     return tuple(float(means[weekday == w].mean()) for w in range(7))
+
+
+def transfer_streams(record: ModelRecord, start: date, *, exclude: Sequence[str] = ()
+                     ) -> list[DemandStream]:
+    """The unit's transfers in from other units, one Poisson or negative binomial stream per
+    sending unit (not in ``exclude``), as its model learnt them.
+
+    A model trained with the hospital's units leaves the patients passed on from another unit
+    out of its emergency stream (``arrivals["emergency"]["not_from"]``) and keeps them as a
+    stream of their own per sender (``arrivals["transfers_in"]``); planning the unit alone
+    puts them back as arrivals. Their patients fall into the unit's groups as its stays that
+    came from that sender did (``routing.received_groups``), else by the emergency shares.
+    Their admission type is ``TRANSFER_TYPE``.
+    """
+    from app.forecast.routing import Routing
+
+    arrivals = record.payload["arrivals"]
+    streams: list[DemandStream] = []
+    los = LosModel.from_payload(record.payload)
+    names = _group_names(los)
+    routing = Routing.from_payload(record.payload)
+    fallback = _weights(los, names, "emergency") or tuple((n, 1.0) for n in names.values())
+    for sender, stream in sorted(arrivals.get("transfers_in", {}).items()):
+        if sender in exclude:
+            continue
+        rate = DailyRateModel.from_dict(stream["rate"])
+        found = {} if routing is None else routing.received_groups(sender)
+        weights = tuple((names[g], w) for g, w in found.items() if g in names and w > 0)
+        streams.append(DemandStream(
+            f"{TRANSFER_STREAM} {sender}", TRANSFER_TYPE,
+            weekday_rates(arrivals, start, rate=rate), weights or fallback,
+            dispersion=rate.size, hour_profile=tuple(stream["hour_profile"])))
+    return streams
 
 
 def _group_names(los: LosModel) -> dict[int, str]:
@@ -226,6 +272,7 @@ def build_planning_input(record: ModelRecord, history: UnitState, *, beds: int |
         if sum(unbooked) > 0:
             streams.append(DemandStream(UNBOOKED_STREAM, "elective", unbooked, elective_weights,
                                         hour_profile=elective_hours))
+    streams += transfer_streams(record, start)
     census = los.census_time
     baseline = PlanningInput(groups=groups, streams=tuple(streams), beds=beds, days=days,
                              warmup_days=warmup_days, replications=replications, seed=seed,

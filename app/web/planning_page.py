@@ -188,6 +188,73 @@ def _report(url: str, demand: UnitDemand, settings: PlanSettings,
     return report
 
 
+# -- units together (app/forecast/network_plan.py) ----------------------------------------------
+
+_network_cache: OrderedDict[tuple[Any, ...], dict[str, Any]] = OrderedDict()
+NETWORK_EXTRA_CHOICES = (1, 2, 3, 4)
+
+
+def _network(session: SessionDep, url: str, unit: str, query: Mapping[str, str]
+             ) -> dict[str, Any]:
+    """The section on planning ``unit`` with another unit: the form's choices and, when one
+    was sent, the report (same settings as the page's plan: a year, 10 replications)."""
+    from app.forecast.network_plan import (
+        NetworkPlanError,
+        NetworkSettings,
+        network_demand,
+        run_network_plan,
+    )
+    from app.web.network_figure import waiting_against_beds
+
+    others = [u.code for u in repo.list_units(session) if u.code != unit]
+    partner = query.get("with_unit", "").strip()
+    section: dict[str, Any] = {"others": others, "partner": partner,
+                               "more": query.get("more_beds", "2").strip(),
+                               "more_in": query.get("more_in", "").strip(),
+                               "choices": NETWORK_EXTRA_CHOICES, "report": None,
+                               "problem": None}
+    if not partner:
+        return section
+    try:
+        if partner not in others:
+            raise ValueError(f"Plan together with: choose a unit from the list, not {partner!r}")
+        more = int(_number(section["more"], "Extra beds"))
+        bounds.check_bed_change(more, "Extra beds")
+        if more not in NETWORK_EXTRA_CHOICES:
+            raise ValueError("Extra beds: choose from the list (more on the command line: "
+                             "morrow plan --units)")
+        more_in = section["more_in"] or partner
+        if more_in not in (unit, partner):
+            raise ValueError("Extra beds in: choose one of the two units")
+        section["more_in"] = more_in
+        now = current_time()
+        pair = [unit, partner]
+        records = [model_for(session, u, now).id for u in pair]
+        key = (url, tuple(pair), tuple(records), repo.data_marker(session),
+               now.astimezone(get_settings().tz).date(), more_in, more)
+        with _lock:
+            cached = _network_cache.get(key)
+        if cached is None:
+            settings = NetworkSettings(days=365 * DEFAULT_YEARS,
+                                       replications=DEFAULT_REPLICATIONS,
+                                       changes=((more_in, more),), vary=more_in)
+            demand = network_demand(session, pair, now, get_settings().tz,
+                                    days=settings.days, replications=settings.replications)
+            with _compute_lock:
+                cached = run_network_plan(demand, settings)
+            cached["figure"] = json.dumps(waiting_against_beds(cached))
+            with _lock:
+                _network_cache[key] = cached
+                while len(_network_cache) > CACHE_SIZE:
+                    _network_cache.popitem(last=False)
+        section["report"] = cached
+    except NoModel as exc:
+        section["problem"] = f"{exc} Planning together needs a trained model for both units."
+    except (NetworkPlanError, ValueError) as exc:
+        section["problem"] = str(exc)
+    return section
+
+
 def _this_week(session: SessionDep, unit: str) -> dict[str, Any] | None:
     """The unit page's figure for this week (its cached forecast), for the page to set the
     long-run figure beside it; None when there is no forecast now."""
@@ -244,4 +311,6 @@ def planning_page(request: Request, unit: str, session: SessionDep, actor: ReadA
         return templates.TemplateResponse(request, "planning.html", context, status_code=422)
     context["target_label"] = f"{settings.target * 100:g}%"
     context["this_week"] = _this_week(session, unit)
-    return templates.TemplateResponse(request, "planning.html", context)
+    context["network"] = _network(session, url, unit, query)
+    status = 422 if context["network"]["problem"] else 200
+    return templates.TemplateResponse(request, "planning.html", context, status_code=status)

@@ -21,6 +21,7 @@ from app.forecast.los import LosModel
 from app.forecast.planning_inputs import (
     BOOKED_STREAM,
     EMERGENCY_STREAM,
+    TRANSFER_STREAM,
     build_planning_input,
     unit_planning_input,
 )
@@ -96,9 +97,43 @@ def test_groups_are_the_models_admission_groups_and_shares_sum_to_one(built) -> 
     for stream in demand.baseline.streams:
         weights = dict(stream.group_weights)
         assert sum(weights.values()) == pytest.approx(1.0, abs=1e-12)
+        if stream.name.startswith(TRANSFER_STREAM):
+            continue  # by where the unit's transferred stays fell: the next test
         for g in model_groups:
             assert weights.get(names[g.node], 0.0) == pytest.approx(
                 g.share.get(stream.admission_type, 0.0), abs=1e-12)
+
+
+def test_transfers_in_are_a_stream_per_sending_unit(built, planning_db: str) -> None:
+    # A model trained with the hospital's units keeps transfers out of its emergency stream
+    # (app/forecast/arrivals.py "not_from"); planning the unit alone must put them back. The
+    # stream's daily count is checked against a recount of the stays from the sender over the
+    # model's arrival window (plain counting; the model's mean over a year of weekdays
+    # is a GLM fit of the same counts, so the two agree within a tenth).
+    record, demand = built
+    arrivals = record.payload["arrivals"]
+    senders = sorted(arrivals.get("transfers_in", {}))
+    if not senders:
+        pytest.skip("the demo has no transfers into this unit")
+    from app.forecast.routing import Routing
+
+    routing = Routing.from_payload(record.payload)
+    los = LosModel.from_payload(record.payload)
+    names = {g.node: f"G{i + 1}" for i, g in enumerate(los.groups.groups)}
+    first, last = (pd.Timestamp(d) for d in arrivals["emergency"]["window"])
+    with db.session_scope(planning_db) as session:
+        history = load_state(session, UNIT, record.trained_until, UTC_ZONE)
+    stays = history.stays
+    day = stays["admitted_at"].dt.tz_convert("UTC").dt.tz_localize(None).dt.normalize()
+    for sender in senders:
+        stream = _stream(demand, f"{TRANSFER_STREAM} {sender}")
+        assert stream.admission_type == "transfer"
+        came = (stays["from_unit"] == sender) & (day >= first) & (day <= last)
+        per_day = came.sum() / ((last - first).days + 1)
+        assert float(np.mean(stream.rate_by_weekday)) == pytest.approx(per_day, rel=0.1)
+        assert routing is not None
+        expected = {names[g]: w for g, w in routing.received_groups(sender).items() if w > 0}
+        assert dict(stream.group_weights) == pytest.approx(expected, abs=1e-12)
 
 
 def test_booked_list_is_a_recount_of_the_bookings_known_at_the_cutoff(built) -> None:
@@ -125,7 +160,8 @@ def test_booked_list_is_a_recount_of_the_bookings_known_at_the_cutoff(built) -> 
     assert booked.cancellation == pytest.approx(did_not_come, rel=1e-12)
     assert 0.05 < booked.cancellation < 0.3  # the demo cancels about a tenth
     # Every elective of the demo is booked, so there is no stream of unbooked electives.
-    assert [s.name for s in demand.baseline.streams] == [EMERGENCY_STREAM, BOOKED_STREAM]
+    assert [s.name for s in demand.baseline.streams
+            if not s.name.startswith(TRANSFER_STREAM)] == [EMERGENCY_STREAM, BOOKED_STREAM]
     assert demand.staffed_beds == 28 and demand.baseline.beds == 28
 
 
