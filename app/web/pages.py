@@ -19,7 +19,7 @@ from app.ingest.importer import SCORE_RANGES
 from app.ingest.retried import IMPORT_TIME_LIMIT_S, ImportTimedOut, import_once
 from app.store import repo
 from app.store.models import ImportBatch
-from app.web import figures, routes_scores, unit_alerts
+from app.web import figures, routes_scores, unit_alerts, unit_network
 from app.web.deps import SessionDep
 from app.web.forecasts import Shown, current
 from app.web.security import DataActor, ReadActor
@@ -115,6 +115,8 @@ def unit_page(request: Request, unit: str, session: SessionDep, actor: ReadActor
         request, list(state.observations["name"].unique()), current_time()))
     # Alert levels, the plain sentences, the learnt ceiling and the leaving list.
     context.update(unit_alerts.context(session, unit, shown, context["patients"], beds_now))
+    # Newcomers by source (transfers from other units) and the step-down queue (issue 16).
+    context.update(unit_network.context(session, unit, shown))
     return templates.TemplateResponse(request, "unit.html", context)
 
 
