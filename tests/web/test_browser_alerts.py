@@ -96,7 +96,9 @@ def test_levels_set_by_a_bed_manager_are_stored_audited_and_change_the_colours(
         p = percent(text)
         assert level == ("alarm" if p >= 0.40 else "warning" if p >= new_warning / 100
                          else "calm"), after
-    assert [lvl for _, lvl in after].count("warning") < [lvl for _, lvl in before].count("warning")
+    # Every night that was at the warning level (all below the new warning level) is plain now.
+    assert [a for (_, b), (_, a) in zip(before, after, strict=True) if b == "warning"] == [
+        "calm"] * len(marked)
     assert f"{new_warning}% or more" in page.inner_text("#levels-legend")
     shot(page, "alerts-unit-new-levels")
     levels(served, 0.10, 0.25)
