@@ -2,10 +2,11 @@
 
 A wait starts when a patient's ``fit_for_discharge`` flag turns to 1 and stays so (the last
 run of 1s before the stay ended, or before as_of while the patient is still in) and ends at the
-stay's end: a transfer to the receiving unit is the event, any other end (home, another unit,
-death) or as_of censors it. The receiving unit is full while its patients are at least its
-staffed beds. Waits are counted only from the receiving unit's first recorded discharge on:
-before it the extract does not hold everyone who was in there, so "full" is unknown.
+stay's end: a transfer to the receiving unit is the event, as_of censors it, and waits that
+ended anywhere else (home, another unit, death) are not the receiver's to explain. The
+receiving unit is full while its patients are at least its staffed beds. Waits are counted
+only from the receiving unit's first recorded discharge on: before it the extract does not
+hold everyone who was in there, so "full" is unknown.
 """
 
 from __future__ import annotations
@@ -70,11 +71,14 @@ def learn_exit_block(sender: UnitState, receiver: UnitState) -> ExitBlock | None
     stays = sender.stays.set_index("stay_id").loc[since.index]
     end = stays["discharged_at"].fillna(sender.as_of)
     start = since.clip(lower=known_from)
-    keep = (end > start).to_numpy()
-    if not keep.any():
-        return None
     to_unit = stays["to_unit"] if "to_unit" in stays else pd.Series(None, index=stays.index)
     moved = (stays["discharged_at"].notna() & (to_unit == receiver.unit)).to_numpy()
+    # The waits of patients bound for the receiver: those who moved there, and those still
+    # waiting at as_of (censored; some may yet go elsewhere). Waits that ended elsewhere
+    # are left out, so the rate describes a patient waiting for this unit's bed.
+    keep = ((end > start) & (moved | stays["discharged_at"].isna())).to_numpy()
+    if not keep.any():
+        return None
     change_at, count, beds = full_steps(receiver)
     full_after = (beds > 0) & (count >= beds)
     # A transfer counts as made while full when the receiver, the moving patient left out,

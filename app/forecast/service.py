@@ -77,8 +77,27 @@ def train_model(session: Session, unit: str, until: datetime, tz: ZoneInfo,
     payload["arrivals"] = train_arrivals(state, units)
     los = LosModel.from_payload(payload)
     payload["routing"] = fit_routing(state, units, los.groups, los.design)
+    payload["exit_block"] = _exit_blocks(session, state, payload, tz)
     model_id = save_model(session, unit, state.as_of.to_pydatetime(), payload)
     return model_id, payload
+
+
+def _exit_blocks(session: Session, state: UnitState, payload: dict[str, Any], tz: ZoneInfo
+                 ) -> dict[str, Any]:
+    """How ready patients' moves to each unit this one passes patients on to were held back
+    while that unit was full (app/forecast/exit_block.py), from what was known at training."""
+    from app.forecast.exit_block import exit_blocks
+    from app.forecast.routing import Routing
+
+    routing = Routing.from_payload(payload)
+    if routing is None:
+        return {}
+    overall = routing.shares_for(None)
+    receivers = {code: load_state(session, code, state.as_of.to_pydatetime(), tz,
+                                  with_history=True)
+                 for code in routing.receiving_units()
+                 if code != state.unit and overall.get(code, 0.0) > 0}
+    return exit_blocks(state, receivers)
 
 
 def model_for(session: Session, unit: str, as_of: datetime) -> ModelRecord:

@@ -10,6 +10,7 @@ before routing) shows no split, and a model without routing shows no waiting pan
 
 from __future__ import annotations
 
+import math
 from datetime import datetime
 from typing import Any
 
@@ -19,6 +20,7 @@ from app.forecast.routing import DIED, ELSEWHERE, HOME, Routing
 from app.forecast.service import NoModel, model_for
 from app.forecast.step_down import admission_groups, waiting_to_step_down
 from app.nights import night_of
+from app.stats.exit_block import ExitBlock
 from app.store import repo
 from app.web.forecasts import Shown
 
@@ -92,11 +94,31 @@ def _step_down(session: Session, unit: str, shown: Shown) -> dict[str, Any] | No
     flagged = waiting_to_step_down(state, routing, beds=beds, groups=groups)
     # Fit for discharge and likely going home is a discharge, not a step-down to a bed.
     waiting = [w for w in flagged if w.destination != HOME]
-    return {"receiving": receiving, "going_home": len(flagged) - len(waiting), "rows": [{
+    return {"receiving": receiving, "going_home": len(flagged) - len(waiting),
+            "held_back": held_back(record.payload), "rows": [{
         "stay_id": w.stay_id, "bed": w.bed, "flagged_at": w.flagged_at.to_pydatetime(),
         "hours": w.hours_waiting, "waited": waited_words(w.hours_waiting),
         "destination": None if w.destination is None else place_words(w.destination, units),
         "share": w.share} for w in waiting]}
+
+
+def held_back(payload: dict[str, Any]) -> list[dict[str, Any]]:
+    """From the model's exit-block estimate (app/forecast/exit_block.py): per receiving unit,
+    the typical wait of a patient fit to move there while it had a bed free and while it was
+    full (a constant rate's median, ln 2 / rate), with the waits it comes from."""
+    out = []
+    for code, found in sorted((payload.get("exit_block") or {}).items()):
+        block = ExitBlock.from_dict(found)
+        room, full = block.with_room.rate, block.when_full.rate
+        out.append({
+            "unit": code, "waits": block.waits,
+            "with_room": None if not room else waited_words(24.0 * math.log(2) / room),
+            # Fewer than five moves while full say more as a count than as a typical wait.
+            "when_full": None if full is None or block.when_full.events < 5
+            else waited_words(24.0 * math.log(2) / full),
+            "moved_when_full": block.when_full.events,
+            "full_days": block.when_full.exposure_days})
+    return out
 
 
 def waited_words(hours: float) -> str:

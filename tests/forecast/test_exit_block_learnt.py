@@ -2,9 +2,9 @@
 
 The two units are simulated here with a rule of the test's own (not the demo's): a ready
 patient moves at a constant rate while the receiving unit has a free staffed bed and cannot
-move while it is full, and may leave for home meanwhile (a competing end that censors the
-wait). The estimator must find the rate with room inside its exact interval (Garwood 1936)
-and no transfer while full; the rate's arithmetic itself is checked against statsmodels in
+move while it is full, and may leave for home meanwhile (a wait that ends elsewhere is not
+the receiving unit's to explain and is left out). The estimator must find the rate with room
+inside its exact interval (Garwood 1936) and no transfer while full; the rate's arithmetic itself is checked against statsmodels in
 tests/stats/test_exit_block.py.
 """
 
@@ -21,7 +21,7 @@ START = pd.Timestamp("2026-01-01", tz="UTC")
 MOVE_RATE, HOME_RATE = 3.0, 0.5  # per day while ready: to the receiving unit, home
 
 
-def _two_units(days: int = 240, beds: int = 4, seed: int = 3):
+def _two_units(days: int = 240, beds: int = 4, seed: int = 3, home_rate: float = HOME_RATE):
     rng = np.random.default_rng(seed)
     dt = 0.01
     receiving: list[dict] = []
@@ -41,7 +41,7 @@ def _two_units(days: int = 240, beds: int = 4, seed: int = 3):
                             "to_unit": None, "ready": t})
             waiting.append(len(sending) - 1)
         for row in list(waiting):
-            if rng.random() < HOME_RATE * dt:
+            if rng.random() < home_rate * dt:
                 sending[row].update(discharged_at=t, to_unit=None, outcome="home")
                 waiting.remove(row)
             elif len(in_receiving) < beds and rng.random() < MOVE_RATE * dt:
@@ -74,7 +74,7 @@ def _two_units(days: int = 240, beds: int = 4, seed: int = 3):
 
 
 def test_rate_with_room_is_found_and_nobody_moves_while_full():
-    sender, receiver = _two_units()
+    sender, receiver = _two_units(home_rate=0.0)
     found = learn_exit_block(sender, receiver)
     assert found is not None
     low, high = found.with_room.interval
@@ -114,3 +114,20 @@ def test_fewer_receiving_beds_mean_more_of_the_wait_blocked():
 
     shares = [share_full(beds) for beds in (2, 5, 12)]
     assert shares[0] > shares[1] > shares[2]
+
+
+def test_waits_that_end_elsewhere_are_left_out():
+    sender, receiver = _two_units(days=120)
+    found = learn_exit_block(sender, receiver)
+    # Counted from the receiving unit's first recorded discharge on (before it, "full" is
+    # unknown), as the module says.
+    # A move at the very instant of the flag is no wait at all.
+    known_from = receiver.stays["discharged_at"].min()
+    ended = sender.stays["discharged_at"]
+    flagged = sender.observations.set_index("stay_id")["observed_at"]
+    after = ended.isna() | ((ended > known_from)
+                            & (ended > sender.stays["stay_id"].map(flagged)))
+    went = (sender.stays["to_unit"] == "R") & after
+    still_in = ended.isna()
+    assert found.waits == int((went | still_in).sum())
+    assert found.with_room.events + found.when_full.events == int(went.sum())

@@ -28,6 +28,7 @@ from sqlalchemy import func, select, update
 
 from app.config import PROJECT_ROOT
 from app.forecast.hospital_total import total_by_night
+from app.forecast.service import model_for
 from app.store import db, repo
 from app.store.models import Observation, Stay
 from tests.conftest import UTC_ZONE
@@ -177,6 +178,11 @@ def test_the_critical_care_page_lists_the_flagged_patient_and_its_wait(
     assert "exit block" in sentence and re.match(rf"{len(waits)} patients? (is|are)", sentence)
     headers = page.locator("#step-down-list thead th[scope=col]").all_inner_texts()
     assert headers[:4] == ["Bed", "Stay", "Fit since", "Waiting"]
+    # The learnt exit block, in words, with the number of waits it stands on (the model's).
+    with db.session_scope(site.db_url) as session:
+        learnt = model_for(session, "KV-CRIT", DEMO_NOW).payload["exit_block"]["KV-SURG"]
+    held = page.inner_text("#held-back-KV-SURG")
+    assert f"({learnt['waits']} patients fit to move on)" in held and "while it was full" in held
     context.close()
 
 

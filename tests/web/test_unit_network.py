@@ -15,7 +15,7 @@ import pandas as pd
 import pytest
 
 from app.web.forecasts import Shown
-from app.web.unit_network import transfer_split, waited_words
+from app.web.unit_network import held_back, transfer_split, waited_words
 from tests.forecast.unit_state import unit_state
 
 AS_OF = pd.Timestamp("2026-11-30 08:00", tz="UTC")
@@ -70,3 +70,18 @@ def test_waits_read_in_hours_then_days() -> None:
     assert waited_words(47.99) == "47 hours"
     assert waited_words(48.0) == "2.0 days"
     assert waited_words(90.0) == "3.8 days"
+
+
+def test_held_back_turns_the_learnt_rates_into_typical_waits() -> None:
+    # A constant rate's median wait is ln 2 / rate (the exponential distribution): 12 moves
+    # a day with room is ln 2 / 12 days = 1.39 hours; 0.5 a day while full is 33.3 hours.
+    payload = {"exit_block": {"KV-SURG": {
+        "with_room": {"events": 120, "exposure_days": 10.0},
+        "when_full": {"events": 6, "exposure_days": 12.0}, "waits": 130}}}
+    (found,) = held_back(payload)
+    assert found["with_room"] == "1 hour" and found["when_full"] == "33 hours"
+    # Under five moves while full, a count is said instead of a typical wait.
+    payload["exit_block"]["KV-SURG"]["when_full"] = {"events": 1, "exposure_days": 186.2}
+    (found,) = held_back(payload)
+    assert found["when_full"] is None and found["moved_when_full"] == 1
+    assert held_back({}) == []
