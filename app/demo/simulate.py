@@ -323,14 +323,24 @@ def _fit_flags(
             flag_at -= timedelta(days=1)
         if flag_at < stay.admitted_at + timedelta(hours=2):
             flag_at = None
+    return _flag_entries(rng, stay, wall, flag_at,
+                         None if flag_at is None else wall.wall(flag_at))
+
+
+def _flag_entries(
+    rng: np.random.Generator, stay: Stay, wall: _Clock, flag_at: datetime | None,
+    stamped: datetime | None,
+) -> list[tuple[datetime, int]]:
+    """A few 0s an hour or more after earlier morning scores (before the flag, or the
+    discharge when there is none), then the 1 at ``stamped``."""
     flags: list[tuple[datetime, int]] = []
     limit = flag_at if flag_at is not None else stay.discharged_at
     for t, _ in stay.scores[1:]:
         unflagged_at = wall.wall(t + _minutes(rng.integers(60, 181)))
         if rng.random() < 0.25 and unflagged_at < limit:
             flags.append((unflagged_at, 0))
-    if flag_at is not None:
-        flags.append((wall.wall(flag_at), 1))
+    if stamped is not None:
+        flags.append((stamped, 1))
     return flags
 
 
@@ -340,12 +350,4 @@ def _readiness_flags(
     """Critical-care readiness: a 1 exactly when the patient is clinically ready to leave
     (every live discharge), some 0s on earlier mornings."""
     flag_at = None if stay.outcome == "died" else stay.ready_at
-    flags: list[tuple[datetime, int]] = []
-    limit = flag_at if flag_at is not None else stay.discharged_at
-    for t, _ in stay.scores[1:]:
-        unflagged_at = wall.wall(t + _minutes(rng.integers(60, 181)))
-        if rng.random() < 0.25 and unflagged_at < limit:
-            flags.append((unflagged_at, 0))
-    if flag_at is not None:
-        flags.append((flag_at, 1))
-    return flags
+    return _flag_entries(rng, stay, wall, flag_at, flag_at)

@@ -10,8 +10,6 @@ step-down in it (a visit is replayed whole).
 
 from __future__ import annotations
 
-import os
-import shutil
 from pathlib import Path
 from typing import Any
 
@@ -32,6 +30,7 @@ from tests.feeds.test_same_answers import (
     load_csv,
     observations_of,
     stays_of,
+    three_databases,
 )
 
 FROM = "2026-11-16T00:00"
@@ -62,17 +61,7 @@ def _slice() -> dict[str, bytes]:
 @pytest.fixture
 def replayed(tmp_path: Path, migrated_template: Path, monkeypatch: pytest.MonkeyPatch
              ) -> Any:
-    secret = tmp_path / "feed_secret"
-    secret.write_text("7" * 64 + "\n")
-    os.chmod(secret, 0o600)
-    monkeypatch.setenv("MORROW_FEED_SECRET_FILE", str(secret))
-    monkeypatch.setenv("MORROW_TIMEZONE", "UTC")
-    monkeypatch.delenv("MORROW_FEED_MAPPING", raising=False)
-    get_settings.cache_clear()
-    urls = {}
-    for way in ("csv", "hl7", "fhir"):
-        shutil.copy(migrated_template, tmp_path / f"{way}.db")
-        urls[way] = f"sqlite:///{tmp_path / way}.db"
+    urls = three_databases(tmp_path, migrated_template, monkeypatch, "7")
     files = _slice()
     load_csv(urls["csv"], files, ("units", "stays", "observations", "bookings"))
     with db.session_scope(urls["csv"]) as session:
@@ -89,7 +78,7 @@ def replayed(tmp_path: Path, migrated_template: Path, monkeypatch: pytest.Monkey
                  "--mapping", str(tmp_path / "replay" / "feeds.toml")]) == 0
     assert main(["--db", urls["fhir"], "import", "fhir", str(tmp_path / "bundles"),
                  "--mapping", str(tmp_path / "bundles" / "feeds.toml")]) == 0
-    keys = Pseudonymiser(load_secret(secret))
+    keys = Pseudonymiser(load_secret(tmp_path / "feed_secret"))
     rename = {stay_id_for(keys.visit(visit[sid]), at): sid for sid, at in admitted.items()}
     mapping = (tmp_path / "replay" / "feeds.toml").read_text()
     yield urls, rename, mapping

@@ -97,11 +97,12 @@ def snapshots_of(url: str, rename: dict[str, str]) -> dict[datetime, list[tuple[
     return out
 
 
-@pytest.fixture
-def three_ways(tmp_path: Path, migrated_template: Path, monkeypatch: pytest.MonkeyPatch
-               ) -> dict[str, Any]:
+def three_databases(tmp_path: Path, template: Path, monkeypatch: pytest.MonkeyPatch,
+                    digit: str) -> dict[str, str]:
+    """A fixed feed secret (``digit`` x 64), the site on UTC, and three migrated SQLite
+    databases, one for each way in (csv, hl7, fhir)."""
     secret = tmp_path / "feed_secret"
-    secret.write_text("5" * 64 + "\n")
+    secret.write_text(digit * 64 + "\n")
     os.chmod(secret, 0o600)
     monkeypatch.setenv("MORROW_FEED_SECRET_FILE", str(secret))
     monkeypatch.setenv("MORROW_TIMEZONE", "UTC")
@@ -109,8 +110,15 @@ def three_ways(tmp_path: Path, migrated_template: Path, monkeypatch: pytest.Monk
     get_settings.cache_clear()
     urls = {}
     for way in ("csv", "hl7", "fhir"):
-        shutil.copy(migrated_template, tmp_path / f"{way}.db")
+        shutil.copy(template, tmp_path / f"{way}.db")
         urls[way] = f"sqlite:///{tmp_path / way}.db"
+    return urls
+
+
+@pytest.fixture
+def three_ways(tmp_path: Path, migrated_template: Path, monkeypatch: pytest.MonkeyPatch
+               ) -> dict[str, Any]:
+    urls = three_databases(tmp_path, migrated_template, monkeypatch, "5")
     files = slice_files()
     load_csv(urls["csv"], files, ("units", "stays", "census", "observations", "bookings"))
     with db.session_scope(urls["csv"]) as session:
@@ -133,7 +141,7 @@ def three_ways(tmp_path: Path, migrated_template: Path, monkeypatch: pytest.Monk
     assert taken_in_all - taken_by_import <= 2 < taken_by_import
     assert main(["--db", urls["fhir"], "import", "fhir", str(tmp_path / "bundles"),
                  "--mapping", str(tmp_path / "bundles" / "feeds.toml")]) == 0
-    keys = Pseudonymiser(load_secret(secret))
+    keys = Pseudonymiser(load_secret(tmp_path / "feed_secret"))
     rename = {stay_id_for(keys.visit(sid), at): sid for sid, at in stay_ids.items()}
     yield {"urls": urls, "rename": rename}
     get_settings.cache_clear()

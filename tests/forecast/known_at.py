@@ -53,3 +53,15 @@ def known_at(directory: Path, cut: datetime) -> dict[str, bytes]:
         kept.append(row)
     files["bookings"] = _write(header, kept)
     return files
+
+
+def numbers_of(obj: object) -> list[float]:
+    """Every number of a forecast JSON in a fixed order (keys sorted, model ids left out), to
+    compare two forecasts number by number."""
+    if isinstance(obj, dict):
+        return [v for key in sorted(obj) if key != "id" for v in numbers_of(obj[key])]
+    if isinstance(obj, list):
+        return [v for item in obj for v in numbers_of(item)]
+    if isinstance(obj, bool) or obj is None or isinstance(obj, str):
+        return []
+    return [float(obj)]

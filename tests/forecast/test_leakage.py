@@ -14,7 +14,7 @@ from app.forecast.service import forecast, train_model
 from app.ingest import import_file
 from app.store import db
 from tests.conftest import DEMO_DIR, UTC_ZONE
-from tests.forecast.known_at import known_at
+from tests.forecast.known_at import known_at, numbers_of
 
 CUT = datetime(2026, 10, 14, 8, 0)  # a Wednesday morning in the demo's census window
 UNIT = "KV-CRIT"
@@ -32,16 +32,6 @@ def _database(template: Path, path: Path, files: dict[str, bytes] | None) -> str
             for kind in ("units", "stays", "census", "observations", "bookings"):
                 import_file(session, kind, files[kind], f"{kind}.csv", tz=UTC_ZONE)
     return url
-
-
-def _numbers(obj: object) -> list[float]:
-    if isinstance(obj, dict):
-        return [v for k in sorted(obj) if k != "id" for v in _numbers(obj[k])]
-    if isinstance(obj, list):
-        return [v for item in obj for v in _numbers(item)]
-    if isinstance(obj, bool) or obj is None or isinstance(obj, str):
-        return []
-    return [float(obj)]
 
 
 def _strings(obj: object) -> list[str]:
@@ -66,7 +56,7 @@ def test_forecast_from_everything_equals_forecast_from_what_was_known(
         db.release_engine(url)
     everything, known = results
     assert _strings(everything) == _strings(known)
-    a, b = np.array(_numbers(everything)), np.array(_numbers(known))
+    a, b = np.array(numbers_of(everything)), np.array(numbers_of(known))
     assert a.shape == b.shape and a.size > 100
     np.testing.assert_allclose(a, b, rtol=0, atol=1e-12)
     assert everything["model"]["trained_until"] == known["model"]["trained_until"]

@@ -16,6 +16,7 @@ from app.forecast.service import forecast, model_for, train_model
 from app.ingest import import_file
 from app.store import db
 from tests.conftest import UTC_ZONE
+from tests.forecast.known_at import numbers_of
 from tests.forecast.two_units import (
     CRIT,
     NOW,
@@ -37,16 +38,6 @@ def trained(migrated_template: Path, tmp_path_factory: pytest.TempPathFactory) -
     url = f"sqlite:///{path}"
     load_hospital(url)
     return url
-
-
-def _numbers(obj: object) -> list[float]:
-    if isinstance(obj, dict):
-        return [v for k in sorted(obj) if k != "id" for v in _numbers(obj[k])]
-    if isinstance(obj, list):
-        return [v for item in obj for v in _numbers(item)]
-    if isinstance(obj, bool) or obj is None or isinstance(obj, str):
-        return []
-    return [float(obj)]
 
 
 def test_the_ward_forecast_takes_the_critical_care_patients_passed_on(trained: str) -> None:
@@ -159,7 +150,7 @@ def test_data_known_only_after_the_cut_changes_nothing_in_the_ward_forecast(
         db.release_engine(url)
     everything, known = results
     assert all(d["transfers_in"][CRIT] > 0 for d in everything["days"])
-    a, b = np.array(_numbers(everything)), np.array(_numbers(known))
+    a, b = np.array(numbers_of(everything)), np.array(numbers_of(known))
     assert a.shape == b.shape and a.size > 50
     np.testing.assert_allclose(a, b, rtol=0, atol=1e-12)
 
