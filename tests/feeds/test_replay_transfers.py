@@ -27,6 +27,7 @@ from tests.feeds.test_same_answers import (
     STAY_FIELDS,
     _csv,
     _rows,
+    export_replays,
     load_csv,
     observations_of,
     stays_of,
@@ -68,12 +69,7 @@ def replayed(tmp_path: Path, migrated_template: Path, monkeypatch: pytest.Monkey
         stays = list(session.scalars(select(Stay)))
         admitted = {s.stay_id: s.admitted_at for s in stays}
         visit = visit_numbers(stays)
-    assert main(["--db", urls["csv"], "feeds", "export-hl7",
-                 "--out", str(tmp_path / "replay" / "stream.hl7")]) == 0
-    assert main(["--db", urls["csv"], "feeds", "export-fhir",
-                 "--out", str(tmp_path / "bundles")]) == 0
-    for way in ("hl7", "fhir"):
-        load_csv(urls[way], files, ("units", "bookings"))
+    export_replays(urls, files, tmp_path)
     assert main(["--db", urls["hl7"], "import", "hl7", str(tmp_path / "replay" / "stream.hl7"),
                  "--mapping", str(tmp_path / "replay" / "feeds.toml")]) == 0
     assert main(["--db", urls["fhir"], "import", "fhir", str(tmp_path / "bundles"),

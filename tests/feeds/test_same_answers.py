@@ -115,6 +115,18 @@ def three_databases(tmp_path: Path, template: Path, monkeypatch: pytest.MonkeyPa
     return urls
 
 
+def export_replays(urls: dict[str, str], files: dict[str, bytes], tmp_path: Path) -> None:
+    """The CSV database exported as an HL7 stream (``replay/``) and FHIR Bundles
+    (``bundles/``), each with its mapping; the units and bookings (which feeds do not carry)
+    loaded into the HL7 and FHIR databases from the CSV files."""
+    assert main(["--db", urls["csv"], "feeds", "export-hl7",
+                 "--out", str(tmp_path / "replay" / "stream.hl7")]) == 0
+    assert main(["--db", urls["csv"], "feeds", "export-fhir",
+                 "--out", str(tmp_path / "bundles")]) == 0
+    for way in ("hl7", "fhir"):
+        load_csv(urls[way], files, ("units", "bookings"))
+
+
 @pytest.fixture
 def three_ways(tmp_path: Path, migrated_template: Path, monkeypatch: pytest.MonkeyPatch
                ) -> dict[str, Any]:
@@ -123,12 +135,7 @@ def three_ways(tmp_path: Path, migrated_template: Path, monkeypatch: pytest.Monk
     load_csv(urls["csv"], files, ("units", "stays", "census", "observations", "bookings"))
     with db.session_scope(urls["csv"]) as session:
         stay_ids = {s.stay_id: s.admitted_at for s in session.scalars(select(Stay))}
-    assert main(["--db", urls["csv"], "feeds", "export-hl7",
-                 "--out", str(tmp_path / "replay" / "stream.hl7")]) == 0
-    assert main(["--db", urls["csv"], "feeds", "export-fhir",
-                 "--out", str(tmp_path / "bundles")]) == 0
-    for way in ("hl7", "fhir"):
-        load_csv(urls[way], files, ("units", "bookings"))
+    export_replays(urls, files, tmp_path)
     assert main(["--db", urls["hl7"], "import", "hl7", str(tmp_path / "replay" / "stream.hl7"),
                  "--mapping", str(tmp_path / "replay" / "feeds.toml")]) == 0
     # The HL7 import takes each census as its messages pass the instant; only the instants
