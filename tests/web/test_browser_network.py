@@ -182,7 +182,7 @@ def test_the_critical_care_page_lists_the_flagged_patient_and_its_wait(
     with db.session_scope(site.db_url) as session:
         learnt = model_for(session, "KV-CRIT", DEMO_NOW).payload["exit_block"]["KV-SURG"]
     held = page.inner_text("#held-back-KV-SURG")
-    assert f"({learnt['waits']} patients fit to move on)" in held and "while it was full" in held
+    assert f"({learnt['waits']} patients fit to move to KV-SURG)" in held and "while it was full" in held
     context.close()
 
 
