@@ -5,9 +5,6 @@ from __future__ import annotations
 
 import json
 import math
-import threading
-from collections import OrderedDict
-from collections.abc import Callable
 from datetime import datetime
 from typing import Any
 
@@ -30,6 +27,7 @@ from app.forecast.routing import Routing
 from app.store import repo
 from app.store.models import StoredForecast
 from app.web import figures, model_track
+from app.web.bounded_cache import BoundedCache
 from app.web.deps import SessionDep
 from app.web.security import ReadActor
 from app.web.templating import templates
@@ -116,22 +114,7 @@ def _record_part(session: SessionDep, unit: str, now: datetime) -> dict[str, Any
     return context
 
 
-_cache: OrderedDict[tuple[Any, ...], dict[str, Any]] = OrderedDict()
-_lock = threading.Lock()
-CACHE_SIZE = 32
-
-
-def _cached(key: tuple[Any, ...], build: Callable[[], dict[str, Any]]) -> dict[str, Any]:
-    with _lock:
-        if key in _cache:
-            _cache.move_to_end(key)
-            return _cache[key]
-    value = build()
-    with _lock:
-        _cache[key] = value
-        while len(_cache) > CACHE_SIZE:
-            _cache.popitem(last=False)
-    return value
+_cache: BoundedCache[dict[str, Any]] = BoundedCache(32)
 
 
 def _record_key(session: SessionDep, unit: str, now: datetime,
@@ -164,11 +147,11 @@ def model_page(request: Request, unit: str, session: SessionDep, actor: ReadActo
                                                 **model_track.BASELINE_NAMES}}
     if found is not None:
         model_id, trained_until, payload = found
-        context.update(_cached((where, "model", model_id), lambda: _model_part(
+        context.update(_cache.get_or_build((where, "model", model_id), lambda: _model_part(
             LosModel.from_payload(payload), model_id, trained_until, payload)))
     runs = backtest_jobs.views(session, unit)
     record_key = (where, "record", unit, *_record_key(session, unit, now, runs))
-    context.update(_cached(record_key, lambda: _record_part(session, unit, now)))
+    context.update(_cache.get_or_build(record_key, lambda: _record_part(session, unit, now)))
     active = next((r for r in runs if r.active), None)
     start, end = backtest_span(now, get_settings().tz, DEFAULT_SPAN)
     context.update({"runs": runs, "active": active, "span_choices": SPAN_CHOICES,

@@ -11,7 +11,6 @@ from __future__ import annotations
 
 import json
 import threading
-from collections import OrderedDict
 from collections.abc import Mapping
 from dataclasses import dataclass
 from typing import Any
@@ -35,6 +34,7 @@ from app.stats.planning import WEEKDAYS
 from app.stats.planning_scenarios import Scenario
 from app.store import repo
 from app.web import figures
+from app.web.bounded_cache import BoundedCache
 from app.web.deps import SessionDep
 from app.web.security import ReadActor
 from app.web.templating import templates
@@ -48,9 +48,8 @@ SLOTS = ("1", "2", "3")
 SLOT_LETTERS = {"1": "A", "2": "B", "3": "C"}
 CACHE_SIZE = 32
 
-_cache: OrderedDict[tuple[Any, ...], dict[str, Any]] = OrderedDict()
-_demands: OrderedDict[tuple[Any, ...], UnitDemand] = OrderedDict()
-_lock = threading.Lock()
+_cache: BoundedCache[dict[str, Any]] = BoundedCache(CACHE_SIZE)
+_demands: BoundedCache[UnitDemand] = BoundedCache(CACHE_SIZE)
 _compute_lock = threading.Lock()
 
 
@@ -154,43 +153,32 @@ def _demand(session: SessionDep, url: str, unit: str) -> UnitDemand:
     record = model_for(session, unit, now)
     key = (url, unit, record.id, repo.data_marker(session),
            now.astimezone(tz).date())
-    with _lock:
-        if key in _demands:
-            return _demands[key]
-    demand = unit_planning_input(session, unit, now, tz, record=record)
-    with _lock:
-        _demands[key] = demand
-        while len(_demands) > CACHE_SIZE:
-            _demands.popitem(last=False)
-    return demand
+    return _demands.get_or_build(
+        key, lambda: unit_planning_input(session, unit, now, tz, record=record))
 
 
 def _report(url: str, demand: UnitDemand, settings: PlanSettings,
             scenarios: list[Scenario]) -> dict[str, Any]:
     key = (url, demand.unit, demand.model_id, demand.staffed_beds, settings,
            json.dumps([s.to_dict() for s in scenarios], sort_keys=True))
-    with _lock:
-        if key in _cache:
-            _cache.move_to_end(key)
-            return _cache[key]
+    found = _cache.get(key)
+    if found is not None:
+        return found
     # One simulation at a time: a second view of the same plan waits and then reads the cache.
     with _compute_lock:
-        with _lock:
-            if key in _cache:
-                return _cache[key]
+        found = _cache.get(key)
+        if found is not None:
+            return found
         report = run_plan(demand, settings, scenarios)
         report["figures"] = {"curve": json.dumps(figures.capacity_curve(report)),
                              "scenarios": json.dumps(figures.scenario_points(report))}
-        with _lock:
-            _cache[key] = report
-            while len(_cache) > CACHE_SIZE:
-                _cache.popitem(last=False)
+        _cache.put(key, report)
     return report
 
 
 # -- units together (app/forecast/network_plan.py) ----------------------------------------------
 
-_network_cache: OrderedDict[tuple[Any, ...], dict[str, Any]] = OrderedDict()
+_network_cache: BoundedCache[dict[str, Any]] = BoundedCache(CACHE_SIZE)
 NETWORK_EXTRA_CHOICES = (1, 2, 3, 4)
 
 
@@ -232,8 +220,7 @@ def _network(session: SessionDep, url: str, unit: str, query: Mapping[str, str]
         records = [model_for(session, u, now).id for u in pair]
         key = (url, tuple(pair), tuple(records), repo.data_marker(session),
                now.astimezone(get_settings().tz).date(), more_in, more)
-        with _lock:
-            cached = _network_cache.get(key)
+        cached = _network_cache.get(key)
         if cached is None:
             settings = NetworkSettings(days=365 * DEFAULT_YEARS,
                                        replications=DEFAULT_REPLICATIONS,
@@ -243,10 +230,7 @@ def _network(session: SessionDep, url: str, unit: str, query: Mapping[str, str]
             with _compute_lock:
                 cached = run_network_plan(demand, settings)
             cached["figure"] = json.dumps(waiting_against_beds(cached))
-            with _lock:
-                _network_cache[key] = cached
-                while len(_network_cache) > CACHE_SIZE:
-                    _network_cache.popitem(last=False)
+            _network_cache.put(key, cached)
         section["report"] = cached
     except NoModel as exc:
         section["problem"] = f"{exc} Planning together needs a trained model for both units."
