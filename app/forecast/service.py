@@ -32,7 +32,7 @@ from app.forecast.models import newest_model, save_model
 from app.forecast.newcomer_clock import elapsed
 from app.forecast.routing import fit_routing
 from app.state import UnitState, load_state
-from app.stats.loss import LOSS_PATHS, LossDraws, draw_losses
+from app.stats.loss import LOSS_PATHS, LossDraws, draw_losses, losses
 from app.stats.occupancy import (
     ArrivalStream,
     BookedAdmissions,
@@ -42,7 +42,7 @@ from app.stats.occupancy import (
     with_current,
 )
 from app.stats.occupancy import newcomers as newcomers_present
-from app.stats.occupancy_paths import PathDraws, draw_paths, with_exact_marginals
+from app.stats.occupancy_paths import PathDraws, any_night_over, draw_paths
 from app.stats.transfer_presence import PassedOn
 from app.store import repo
 from app.store.models import StoredForecast
@@ -50,6 +50,8 @@ from app.timeutil import census_instants_after, iso, localize
 
 FORMAT = 1
 DEFAULT_DAYS = 7
+# Joint paths of the week for the any-night risk where the unit has no ceiling; under a
+# ceiling the ceiling's own paths serve (app.stats.loss.LOSS_PATHS).
 WEEK_PATHS = 5000
 # The current stays are asked of the length-of-stay model at every this many instants of the
 # ceiling's grid (hourly slots) and interpolated in between.
@@ -251,9 +253,13 @@ class Backdrop:
     booked: BookedAdmissions
     streams: list[ArrivalStream]
     limits: list[int | None]
+    # The week's joint paths for the any-night risk (None: not asked for, or a bed count
+    # unknown). Under a ceiling they are the ceiling's own paths (``losses``), which turn
+    # arrivals away at the instant they come, and ``draws`` stays None.
     draws: PathDraws | None
     # Paths that turn arrivals away at their arrival instant (None: no ceiling).
     losses: LossDraws | None = None
+    week: bool = False
     # Patients other units pass on (None: no sending unit; app/forecast/transfers.py).
     passed: PassedOn | None = None
 
@@ -306,23 +312,24 @@ def forecast_backdrop(state: UnitState, record: ModelRecord, *, days: int = DEFA
                                   [emergency, unbooked, *fallback])
     beds = [state.beds_on(d) for d in local_days]
     stay_ids = tuple(str(s) for s in state.stays.loc[state.present_mask(state.as_of), "stay_id"])
+    limits = _limits(beds, excess_beds(arrivals), len(stay_ids))
+    loss_draws = None
+    if any(c is not None for c in limits):
+        loss_draws = draw_losses(booked, streams, census_at, LOSS_PATHS,
+                                 np.random.default_rng(seed), seed=seed)
+    week = paths > 0 and all(b is not None for b in beds)
     draws = None
-    if paths > 0 and all(b is not None for b in beds):
+    if week and loss_draws is None:
         draws = draw_paths(len(stay_ids), booked, streams, census_at, paths,
                            np.random.default_rng(seed))
-    limits = _limits(beds, excess_beds(arrivals), len(stay_ids))
-    losses = None
-    if any(c is not None for c in limits):
-        losses = draw_losses(booked, streams, census_at, LOSS_PATHS,
-                             np.random.default_rng(seed), seed=seed)
     if passed is not None:
         from app.forecast.transfers import fallback_means
 
         passed = replace(passed, fallback_means=fallback_means(streams, census_at))
     return Backdrop(unit=state.unit, as_of=state.as_of, stay_ids=stay_ids, los=los,
                     instants=instants, census_at=census_at, local_days=local_days, beds=beds,
-                    booked=booked, streams=streams, limits=limits, draws=draws, losses=losses,
-                    passed=passed)
+                    booked=booked, streams=streams, limits=limits, draws=draws, losses=loss_draws,
+                    passed=passed, week=week)
 
 
 def _limits(beds: list[int | None], excess: int | None, in_unit: int) -> list[int | None]:
@@ -417,9 +424,12 @@ def forecast_on(backdrop: Backdrop, state: UnitState, record: ModelRecord
     if tuple(inputs.predictions.stay_ids) != backdrop.stay_ids:
         raise ValueError("state: other current stays than the backdrop's")
     p_present = inputs.predictions.p_present
+    lost = None
+    if backdrop.losses is not None:
+        lost = losses(backdrop.losses, inputs.p_grid, backdrop.limits)
     results = with_current(p_present, backdrop.newcomers, inputs.beds, backdrop.limits,
                            draws=backdrop.losses, p_grid=inputs.p_grid,
-                           passed=backdrop.passed)
+                           passed=backdrop.passed, lost=lost)
     out_days = []
     for k, (instant, local_day, bed_count, result) in enumerate(zip(
             inputs.instants, inputs.local_days, inputs.beds, results, strict=True)):
@@ -440,11 +450,15 @@ def forecast_on(backdrop: Backdrop, state: UnitState, record: ModelRecord
         "days": out_days,
         "stays": inputs.predictions.records(),
     }
-    if backdrop.draws is not None:
-        sims = with_exact_marginals(backdrop.draws.counts(p_present, backdrop.limits),
-                                    [r.pmf for r in results], backdrop.draws.tie_break)
-        payload["p_over_capacity_any_day"] = float(
-            np.mean((sims > np.asarray(inputs.beds)[None, :]).any(axis=1)))
+    if backdrop.week:                   # every night's bed count is known
+        if lost is not None and backdrop.losses is not None:
+            raw, tie_break = lost.kept(), backdrop.losses.tie_break
+        else:
+            assert backdrop.draws is not None
+            raw = backdrop.draws.counts(p_present, backdrop.limits)
+            tie_break = backdrop.draws.tie_break
+        payload["p_over_capacity_any_day"] = any_night_over(
+            raw, [r.pmf for r in results], tie_break, [int(b or 0) for b in inputs.beds])
     return payload, inputs
 
 

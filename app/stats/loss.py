@@ -62,7 +62,10 @@ IntArray = npt.NDArray[np.int64]
 # Paths of the correction. At 1,000 paths the Monte-Carlo standard error of P(full) on a night
 # where every path reaches the ceiling is at most 0.5 / sqrt(1000) = 0.016; nights the ceiling
 # is rarely reached have much less (only those paths carry noise). A 7-day forecast of a
-# 28-bed unit spends about 10 ms on them (tests/benchmarks/test_bench_forecast.py).
+# 28-bed unit spends about 10 ms on them (tests/benchmarks/test_bench_forecast.py). The same
+# paths give the week's any-night risk (``Losses.kept``; standard error at most 0.016 too:
+# on the demo's units, 8 seeds at 8 mornings, 0.008-0.013, and the mean within 0.011 of a
+# 20,000-path run).
 LOSS_PATHS = 1000
 
 __all__ = ["LOSS_PATHS", "LossDraws", "Losses", "corrected_pmf", "draw_losses",
@@ -99,6 +102,9 @@ class LossDraws:
     rank: IntArray
     booked_in: npt.NDArray[np.int32]          # (grid, paths) bookings in at each instant
     stream_names: tuple[str, ...]
+    # One uniform per path, to break ties when the paths are reordered to exact marginals
+    # (app.stats.occupancy_paths.with_exact_marginals).
+    tie_break: FloatArray
 
 
 def _survival_rows(stay: Any, tau: FloatArray) -> FloatArray:
@@ -194,7 +200,8 @@ def draw_losses(booked: Any, streams: Sequence[Any], census_at: npt.ArrayLike, n
     first = np.r_[0, np.flatnonzero(np.diff(key)) + 1] if key.size else np.zeros(0, dtype=int)
     rank = np.arange(key.size) - np.repeat(first, np.diff(np.r_[first, key.size]))
     return LossDraws(grid, census_index, n_paths, seed, a_at, a_path, a_leave, a_stream,
-                     rank.astype(np.int64), booked_in, tuple(s.name for s in streams))
+                     rank.astype(np.int64), booked_in, tuple(s.name for s in streams),
+                     rng.random(n_paths))
 
 
 def _grid_clock(booked: Any, streams: Sequence[Any], census_at: FloatArray, grid: FloatArray
@@ -285,6 +292,11 @@ class Losses:
     free: npt.NDArray[np.int64]
     lost: npt.NDArray[np.int64]
     stream_names: tuple[str, ...]
+
+    def kept(self) -> npt.NDArray[np.int64]:
+        """(paths, K) the count along every path with arrivals turned away: joint paths of
+        the week, blocked at the instants arrivals come."""
+        return (self.free - self.lost.sum(axis=2)).T
 
 
 def _grid_limits(draws: LossDraws, limits: Sequence[int | None]) -> FloatArray:

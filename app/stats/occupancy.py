@@ -373,11 +373,13 @@ def occupancy_days(
 def with_current(p_current: npt.ArrayLike, others: Newcomers, beds: Sequence[int | None],
                  limits: Sequence[int | None] | None = None, *, draws: LossDraws | None = None,
                  p_grid: npt.ArrayLike | None = None,
-                 passed: PassedOn | None = None) -> list[OccupancyDay]:
+                 passed: PassedOn | None = None, lost: Losses | None = None
+                 ) -> list[OccupancyDay]:
     """Add the current stays (Poisson-binomial) to the newcomers, instant by instant, and
     turn arrivals away at the ceiling: at the instant they come, by the paths ``draws``
     (:mod:`app.stats.loss`; ``p_grid`` the current stays on their grid, interpolated from
-    ``p_current`` if None), or without draws at the census instant (``_within_limit``).
+    ``p_current`` if None; ``lost`` those paths already followed, :func:`losses`), or
+    without draws at the census instant (``_within_limit``).
 
     ``passed``: patients other units pass on (:mod:`app.stats.transfer_presence`); like
     current stays and bookings they are never turned away (a transfer waits in its unit),
@@ -393,8 +395,7 @@ def with_current(p_current: npt.ArrayLike, others: Newcomers, beds: Sequence[int
     if len(ceiling) != n_instants:
         raise ValueError(f"limits: needs one per census instant ({n_instants}), "
                          f"got {len(ceiling)}")
-    lost = None
-    if draws is not None and any(c is not None for c in ceiling):
+    if lost is None and draws is not None and any(c is not None for c in ceiling):
         if p_grid is None:
             p_grid = interpolated_current(p_now, draws.grid[draws.census_index], draws.grid)
         lost = losses(draws, p_grid, ceiling)

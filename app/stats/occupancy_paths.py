@@ -22,7 +22,8 @@ from app.stats.cancel import checkpoint
 from app.stats.occupancy import ArrivalStream, BookedAdmissions, FloatArray, _sf_once
 from app.stats.poisson_binomial import pmf_quantile
 
-__all__ = ["PathDraws", "draw_paths", "simulate_paths", "with_exact_marginals"]
+__all__ = ["PathDraws", "any_night_over", "draw_paths", "simulate_paths",
+           "with_exact_marginals"]
 
 
 @dataclass(frozen=True, eq=False)
@@ -113,6 +114,15 @@ def with_exact_marginals(counts: npt.NDArray[np.int64], pmfs: Sequence[FloatArra
         order = np.lexsort((tie_break, counts[:, k]))
         out[order, k] = pmf_quantile(pmf, levels)
     return out
+
+
+def any_night_over(counts: npt.NDArray[np.int64], pmfs: Sequence[FloatArray],
+                   tie_break: FloatArray, beds: Sequence[int]) -> float:
+    """The chance of more patients than ``beds`` on at least one census night: the share of
+    paths over on some night, once each night's counts follow that night's exact pmf
+    (:func:`with_exact_marginals`)."""
+    sims = with_exact_marginals(counts, pmfs, tie_break)
+    return float(np.mean((sims > np.asarray(beds)[None, :]).any(axis=1)))
 
 
 def simulate_paths(

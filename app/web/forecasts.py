@@ -1,6 +1,6 @@
 """The forecast a page shows: computed once per unit, model, minute and data version.
 
-Forecasts are exact convolutions plus 5,000 joint paths, so a page view would otherwise
+Forecasts are exact convolutions plus simulated joint paths, so a page view would otherwise
 redo the same work many times a minute at a huddle. Any write (every write is an import
 batch) changes the data marker and so the key. A score changes only its patient's part: the
 backdrop (bookings, arrivals, the paths' draws) is kept until stays, bookings, the model or
