@@ -8,10 +8,10 @@ would have been made then from the same data.
 from __future__ import annotations
 
 import json
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, replace
 from datetime import UTC, date, datetime, time, timedelta
-from functools import cached_property
+from functools import cached_property, lru_cache
 from typing import Any
 from zoneinfo import ZoneInfo
 
@@ -27,10 +27,11 @@ from app.forecast.arrivals import (
     train_arrivals,
     unbooked_means,
 )
-from app.forecast.los import LosModel, predict_stays, train_los
+from app.forecast.los import LosModel, train_los
 from app.forecast.models import newest_model, save_model
 from app.forecast.newcomer_clock import elapsed
 from app.forecast.routing import fit_routing
+from app.forecast.stay_grid import on_instants, predicted_on_grid
 from app.state import UnitState, load_state
 from app.stats.loss import LOSS_PATHS, LossDraws, draw_losses, losses
 from app.stats.occupancy import (
@@ -53,9 +54,6 @@ DEFAULT_DAYS = 7
 # Joint paths of the week for the any-night risk where the unit has no ceiling; under a
 # ceiling the ceiling's own paths serve (app.stats.loss.LOSS_PATHS).
 WEEK_PATHS = 5000
-# The current stays are asked of the length-of-stay model at every this many instants of the
-# ceiling's grid (hourly slots) and interpolated in between.
-GRID_STRIDE = 3
 NS_PER_DAY = 86_400e9
 
 
@@ -114,19 +112,30 @@ def _days_after(instant: datetime, as_of: pd.Timestamp) -> float:
     return (pd.Timestamp(instant) - as_of).value / NS_PER_DAY
 
 
+@lru_cache(maxsize=64)
+def _slot_offsets(tz: ZoneInfo, as_of: pd.Timestamp, first_day: date, days: int, hours: int
+                  ) -> np.ndarray:
+    """(days, hours) days after as_of of each local day's hourly slot midpoints (hh:30);
+    every stream of every unit forecast at this as_of shares them."""
+    out = np.empty((days, hours))
+    for d in range(days):
+        local_day = first_day + timedelta(days=d)
+        for hour in range(hours):
+            out[d, hour] = _days_after(localize(datetime.combine(local_day, time(hour, 30)), tz),
+                                       as_of)
+    out.setflags(write=False)
+    return out
+
+
 def _hourly_stream(name: str, state: UnitState, first_day: date, day_means: list[float],
                    profile: list[float], size: float | None, stay: Any) -> ArrivalStream:
-    at, mean, day = [], [], []
-    for d, day_mean in enumerate(day_means):
-        local_day = first_day + timedelta(days=d)
-        for hour, share in enumerate(profile):
-            instant = localize(datetime.combine(local_day, time(hour, 30)), state.tz)
-            offset = _days_after(instant, state.as_of)
-            if offset > 0 and day_mean * share > 0:
-                at.append(offset)
-                mean.append(day_mean * share)
-                day.append(d)
-    return ArrivalStream(name, tuple(at), tuple(mean), tuple(day), size, stay)
+    offsets = _slot_offsets(state.tz, state.as_of, first_day, len(day_means), len(profile))
+    means = (np.asarray(day_means, dtype=float)[:, None]
+             * np.asarray(profile, dtype=float)[None, :])
+    keep = (offsets > 0) & (means > 0)
+    day = np.nonzero(keep)[0]
+    return ArrivalStream(name, tuple(offsets[keep].tolist()), tuple(means[keep].tolist()),
+                         tuple(day.tolist()), size, stay)
 
 
 def clock_lags(los: LosModel, state: UnitState, offsets: list[float] | tuple[float, ...],
@@ -206,13 +215,15 @@ def forecast(session: Session, unit: str, as_of: datetime, tz: ZoneInfo, *,
                                senders=senders_of(session, state, record))
 
 
-def senders_of(session: Session, state: UnitState, record: ModelRecord) -> list[Any]:
+def senders_of(session: Session, state: UnitState, record: ModelRecord,
+               loaded: Mapping[str, tuple[UnitState, dict[str, Any] | None]] | None = None
+               ) -> list[Any]:
     """The units passing patients on to ``state.unit``, each with its state and model at the
-    same as_of (app/forecast/transfers.py)."""
+    same as_of (app/forecast/transfers.py; ``loaded``: those at hand already)."""
     from app.forecast.transfers import senders_for
 
     return senders_for(session, state.unit, state.as_of.to_pydatetime(), state.tz,
-                       record.payload)
+                       record.payload, loaded=loaded)
 
 
 @dataclass(frozen=True, eq=False)
@@ -342,11 +353,11 @@ def _limits(beds: list[int | None], excess: int | None, in_unit: int) -> list[in
 
 def forecast_inputs(state: UnitState, record: ModelRecord, days: int) -> ForecastInputs:
     """Per-stay probabilities, known bookings and the arrival streams for the next ``days``."""
-    return _inputs(forecast_backdrop(state, record, days=days, paths=0), state)
+    return _inputs(forecast_backdrop(state, record, days=days, paths=0), state, record)
 
 
-def _inputs(backdrop: Backdrop, state: UnitState) -> ForecastInputs:
-    predictions, p_grid = _predictions(backdrop, state)
+def _inputs(backdrop: Backdrop, state: UnitState, record: ModelRecord) -> ForecastInputs:
+    predictions, p_grid = _predictions(backdrop, state, record)
     return ForecastInputs(
         instants=backdrop.instants, census_at=backdrop.census_at,
         local_days=backdrop.local_days, beds=backdrop.beds, predictions=predictions,
@@ -354,30 +365,18 @@ def _inputs(backdrop: Backdrop, state: UnitState) -> ForecastInputs:
         p_grid=p_grid)
 
 
-def _predictions(backdrop: Backdrop, state: UnitState) -> tuple[Any, np.ndarray | None]:
+def _predictions(backdrop: Backdrop, state: UnitState, record: ModelRecord
+                 ) -> tuple[Any, np.ndarray | None]:
     """The current stays at the census instants and, under a ceiling, also at every instant
-    of the paths' grid (one call of the length-of-stay model for both)."""
+    of the paths' grid: one call of the length-of-stay model on the shared grid
+    (app/forecast/stay_grid.py), linear in time in between."""
+    u, on_grid = predicted_on_grid(record.payload, backdrop.los, state, backdrop.census_at)
+    census_pos = np.searchsorted(u, backdrop.census_at) - 1
+    predictions = replace(on_grid, instants=tuple(backdrop.instants),
+                          p_present=on_grid.p_present[:, census_pos])
     if backdrop.losses is None:
-        return predict_stays(backdrop.los, state, backdrop.instants), None
-    grid = backdrop.losses
-    # The model is asked at every third grid instant (3 hours apart) and at the census
-    # instants, and interpolated linearly in time in between.
-    asked = np.union1d(np.union1d(np.arange(0, grid.grid.size, GRID_STRIDE),
-                                  grid.census_index), [grid.grid.size - 1])
-    as_of = state.as_of.to_pydatetime()
-    at = [as_of + timedelta(microseconds=round(float(t) * 86_400e6)) for t in grid.grid[asked]]
-    census_pos = np.searchsorted(asked, grid.census_index)
-    for instant, g in zip(backdrop.instants, census_pos, strict=True):
-        at[int(g)] = instant
-    on_grid = predict_stays(backdrop.los, state, at)
-    p_asked = on_grid.p_present
-    hi = np.clip(np.searchsorted(asked, np.arange(grid.grid.size)), 1, max(asked.size - 1, 1))
-    lo = hi - 1 if asked.size > 1 else hi
-    t0, t1 = grid.grid[asked[lo]], grid.grid[asked[hi]]
-    w = np.where(t1 > t0, (grid.grid - t0) / np.where(t1 > t0, t1 - t0, 1.0), 1.0)
-    p_grid = p_asked[:, lo] * (1.0 - w) + p_asked[:, hi] * w
-    return replace(on_grid, instants=tuple(backdrop.instants),
-                   p_present=p_asked[:, census_pos]), p_grid
+        return predictions, None
+    return predictions, on_instants(u, on_grid.p_present, backdrop.losses.grid)
 
 
 def expected_admissions(inputs: ForecastInputs) -> list[float]:
@@ -420,7 +419,7 @@ def forecast_on(backdrop: Backdrop, state: UnitState, record: ModelRecord
     (observations may be newer than the backdrop's)."""
     if state.unit != backdrop.unit or state.as_of != backdrop.as_of:
         raise ValueError("state: another unit or as_of than the backdrop's")
-    inputs = _inputs(backdrop, state)
+    inputs = _inputs(backdrop, state, record)
     if tuple(inputs.predictions.stay_ids) != backdrop.stay_ids:
         raise ValueError("state: other current stays than the backdrop's")
     p_present = inputs.predictions.p_present

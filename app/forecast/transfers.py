@@ -3,9 +3,10 @@
 For each sending unit S (a unit R received patients from by its training cut-off):
 
 - S has a usable model at ``as_of`` (trained by then, with routing): its current patients are
-  asked of S's own length-of-stay model on a grid of instants (every ``LEAVE_STEP_DAYS`` and
-  R's census instants), each one's chance of leaving S in each bin times its group's routing
-  share to R times the survival in R from the bin's midpoint
+  asked of S's own length-of-stay model on a grid of instants (every three hours and R's
+  census instants: ``app.forecast.stay_grid``, so S's own forecast and R's share the
+  answer when their census instants agree), each one's chance of leaving S in each bin
+  times its group's routing share to R times the survival in R from the bin's midpoint
   (:func:`app.stats.transfer_presence.passed_presence`); S's bookings and arrival streams
   (emergency, electives not yet booked) reach R through the tandem survival
   (:class:`app.stats.transfer_presence.TandemStay`), each arrival day's count still negative
@@ -23,7 +24,7 @@ state and model follow the "as of" rule as R's do.
 
 from __future__ import annotations
 
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from datetime import date, timedelta
 from typing import Any
@@ -33,22 +34,19 @@ import numpy as np
 from sqlalchemy.orm import Session
 
 from app.forecast.arrivals import emergency_means, unbooked_means
-from app.forecast.los import LosModel, predict_stays
+from app.forecast.los import LosModel
 from app.forecast.routing import Routing
+from app.forecast.stay_grid import predicted_on_grid
 from app.state import UnitState, load_state
 from app.stats.arrivals import DailyRateModel
 from app.stats.occupancy import ArrivalStream, StayMixture, stream_presence
 from app.stats.transfer_presence import (
     PassedOn,
     TandemStay,
-    leaving_grid,
     passed_presence,
     tandem_kernel,
 )
 
-# Leaving instants of the senders' current patients: every three hours (and each census
-# instant), as the ceiling's grid asks the length-of-stay model (service.GRID_STRIDE).
-LEAVE_STEP_DAYS = 0.125
 MODES = ("pass-on", "stream")
 
 
@@ -72,9 +70,12 @@ def sender_units(record_payload: dict[str, Any]) -> tuple[str, ...]:
 
 
 def senders_for(session: Session, unit: str, as_of: Any, tz: ZoneInfo,
-                record_payload: dict[str, Any], *, mode: str = "pass-on") -> list[Sender]:
+                record_payload: dict[str, Any], *, mode: str = "pass-on",
+                loaded: Mapping[str, tuple[UnitState, dict[str, Any] | None]] | None = None
+                ) -> list[Sender]:
     """Each sending unit of ``unit`` with its state and newest model at ``as_of`` (the same
-    "as of" rule as the receiving forecast's)."""
+    "as of" rule as the receiving forecast's). ``loaded``: units whose state and newest
+    model payload (None: no model) at this as_of are at hand already, used as they are."""
     from app.forecast.models import newest_model
 
     if mode not in MODES:
@@ -83,12 +84,20 @@ def senders_for(session: Session, unit: str, as_of: Any, tz: ZoneInfo,
     for code in sender_units(record_payload):
         if code == unit:
             continue
-        found = newest_model(session, code, as_of) if mode == "pass-on" else None
-        if found is None or Routing.from_payload(found[2]) is None:
+        if mode != "pass-on":
             out.append(Sender(code))
             continue
-        state = load_state(session, code, as_of, tz, with_history=False)
-        out.append(Sender(code, state, found[2]))
+        if loaded is not None and code in loaded:
+            state, payload = loaded[code]
+        else:
+            found = newest_model(session, code, as_of)
+            state, payload = None, None if found is None else found[2]
+        if payload is None or Routing.from_payload(payload) is None:
+            out.append(Sender(code))
+            continue
+        if state is None:
+            state = load_state(session, code, as_of, tz, with_history=False)
+        out.append(Sender(code, state, payload))
     return out
 
 
@@ -200,10 +209,7 @@ def _from_sender(receiver: UnitState, sender: Sender, h: np.ndarray, g_r: Any,
     s_routing = Routing.from_payload(payload)
     assert s_routing is not None
     target = receiver.unit
-    u = leaving_grid(h, LEAVE_STEP_DAYS)
-    as_of = receiver.as_of.to_pydatetime()
-    at = [as_of + timedelta(microseconds=round(float(t) * 86_400e6)) for t in u[1:]]
-    predicted = predict_stays(s_los, state, at)
+    u, predicted = predicted_on_grid(payload, s_los, state, h)
     n = len(predicted.stay_ids)
     rows = [np.zeros((0, h.size))]
     ids: list[str] = []

@@ -15,8 +15,9 @@ Every timestamp column is ``datetime64[ns, UTC]``. The rules (DATA_CONTRACT.md, 
 
 from __future__ import annotations
 
-from dataclasses import dataclass, replace
+from dataclasses import dataclass, field, replace
 from datetime import date, datetime, time
+from typing import Any
 from zoneinfo import ZoneInfo
 
 import numpy as np
@@ -54,6 +55,9 @@ class UnitState:
         Bookings made by ``as_of`` (``BOOKING_COLUMNS``), later cancellations blanked.
     snapshots : DataFrame
         Census snapshots taken by ``as_of`` with their occupancy (``SNAPSHOT_COLUMNS``).
+    memo : dict
+        Answers computed from this state and kept with it (app/forecast/stay_grid.py); not
+        copied by ``dataclasses.replace``, so a state with other frames starts empty.
     """
 
     unit: str
@@ -65,6 +69,7 @@ class UnitState:
     observations: pd.DataFrame
     bookings: pd.DataFrame
     snapshots: pd.DataFrame
+    memo: dict[Any, Any] = field(default_factory=dict, init=False, repr=False)
 
     def known_at(self, at: datetime | pd.Timestamp) -> UnitState:
         """What this state knew at an earlier instant: the "as of" rule applied to its frames

@@ -107,32 +107,33 @@ class LossDraws:
     tie_break: FloatArray
 
 
-def _survival_rows(stay: Any, tau: FloatArray) -> FloatArray:
-    """(grid, grid) S(tau[g'] - tau[g]) for g' > g, and 2 (above any uniform) for g' <= g:
-    row g gives, for a stay begun at grid instant g, its chance of lasting to each later one."""
-    lags = tau[None, :] - tau[:, None]
-    later = np.triu(np.ones(lags.shape, dtype=bool), k=1)
-    # S on an hourly lattice of times, interpolated linearly in between (a length-of-stay
-    # survival of days moves by far less than the paths' Monte-Carlo error within an hour).
-    top = float(lags.max(initial=0.0))
+def _stay_table(stay: Any, tau: FloatArray) -> tuple[FloatArray, FloatArray]:
+    """The stay's survival S on an hourly lattice of lags up to the grid's span, made
+    non-increasing: interpolated linearly in between (a length-of-stay survival of days moves
+    by far less than the paths' Monte-Carlo error within an hour)."""
+    top = float(tau[-1] - tau[0]) if tau.size else 0.0
     knots = np.linspace(0.0, top, max(int(np.ceil(top * 24)), 1) + 1)
-    out = np.full(lags.shape, 2.0)
-    out[later] = np.interp(lags[later], knots, np.asarray(stay.sf(knots), dtype=float))
-    return np.minimum.accumulate(out, axis=1)
+    return knots, np.minimum.accumulate(np.asarray(stay.sf(knots), dtype=float))
 
 
-def _leave_index(rows: FloatArray, start: IntArray, u: FloatArray) -> IntArray:
-    """First grid index at which a stay begun at ``start`` with survival draw ``u`` is over.
+def _leave_index(table: tuple[FloatArray, FloatArray], tau: FloatArray, start: IntArray,
+                 u: FloatArray) -> IntArray:
+    """First grid index at which a stay begun at grid instant ``start`` with survival draw
+    ``u`` is over (``tau.size``: still in at the end).
 
     A stay of length L = S^-1(u) (u uniform, so L has survival S) is in at a later instant
-    while S(time since start) > u: the number of grid instants where that holds, plus those
-    up to ``start``, is the first index at which it is gone (inverse-transform sampling on
-    the grid, with no lengths drawn)."""
-    size = rows.shape[1]
-    # Row g's values -S lie in [-2, 0]; shifted by 3 g the rows laid end to end increase, so
-    # one search over all of them answers every stay at once.
-    lattice = (3.0 * np.arange(rows.shape[0])[:, None] - rows).ravel()
-    return np.searchsorted(lattice, 3.0 * start - u, side="left") - start * size
+    while S(time since start) > u, that is while the time since start is below L: the first
+    grid instant at least L after the start is the one at which it is gone
+    (inverse-transform sampling on the grid; L read off the interpolated table)."""
+    knots, s = table
+    j = np.searchsorted(-s, -u, side="left")           # first knot with S <= u
+    inside = np.clip(j, 1, max(s.size - 1, 1))
+    s_lo, s_hi = s[inside - 1], s[inside]
+    frac = np.where(s_lo > s_hi, (s_lo - u) / np.where(s_lo > s_hi, s_lo - s_hi, 1.0), 1.0)
+    length = knots[inside - 1] + np.clip(frac, 0.0, 1.0) * (knots[inside] - knots[inside - 1])
+    length = np.where(j == 0, 0.0, np.where(j >= s.size, np.inf, length))
+    leave = np.searchsorted(tau, tau[start] + length, side="left")
+    return np.minimum(np.maximum(leave, start + 1), tau.size).astype(np.int64)
 
 
 def draw_losses(booked: Any, streams: Sequence[Any], census_at: npt.ArrayLike, n_paths: int,
@@ -161,11 +162,11 @@ def draw_losses(booked: Any, streams: Sequence[Any], census_at: npt.ArrayLike, n
         by_stay.setdefault(id(booked.stays[j]), []).append(int(j))
     columns = np.arange(n_paths)
     for rows in by_stay.values():
-        survival = _survival_rows(booked.stays[rows[0]], tau)
+        table = _stay_table(booked.stays[rows[0]], tau)
         admitted_at = np.searchsorted(grid, admit_at[rows]).astype(np.int64)
         went = goes[rows]                                   # (bookings of the group, paths)
         booking, on_path = np.nonzero(went)
-        gone = _leave_index(survival, admitted_at[booking], rng.random(booking.size))
+        gone = _leave_index(table, tau, admitted_at[booking], rng.random(booking.size))
         np.add.at(change, admitted_at, went.astype(np.int32))
         change -= np.bincount(gone * n_paths + columns[on_path],
                               minlength=(size + 1) * n_paths).reshape(size + 1, n_paths
@@ -184,7 +185,7 @@ def draw_losses(booked: Any, streams: Sequence[Any], census_at: npt.ArrayLike, n
         start = np.searchsorted(grid, slot_at)[slot].astype(np.int64)
         at.append(start)
         path.append(on_path)
-        leave.append(_leave_index(_survival_rows(stream.stay, tau), start,
+        leave.append(_leave_index(_stay_table(stream.stay, tau), tau, start,
                                   rng.random(start.size)))
         which.append(np.full(start.size, s, dtype=np.int64))
     if at:

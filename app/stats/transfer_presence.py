@@ -83,10 +83,12 @@ def tandem_kernel(receiving_sf: Survival, span: float, step: float = 1.0 / 24.0
     """The grid x = 0, step, ..., span and G_R(x_n - m_j) for leaving bins j ending by x_n
     (zero otherwise): what every tandem stay into the same receiving unit shares."""
     x = np.arange(0.0, span + step, step)
-    mid = (x[:-1] + x[1:]) / 2.0
-    lag = x[None, :] - mid[:, None]                # (bins, x)
-    ended = x[1:, None] <= x[None, :] + 1e-12
-    return x, np.where(ended, _sf_on(receiving_sf, np.where(ended, lag, 0.0)), 0.0)
+    # The lag from bin j's midpoint to x_n is (n - j - 0.5) steps: G_R is needed only at
+    # those x.size lags, and bin j counts at x_n once it has ended (n >= j + 1).
+    apart = np.arange(x.size)[None, :] - np.arange(x.size - 1)[:, None]     # (bins, x)
+    g_at = np.asarray(receiving_sf(np.maximum(np.arange(x.size) - 0.5, 0.0) * step),
+                      dtype=float)
+    return x, np.where(apart >= 1, g_at[np.clip(apart, 0, x.size - 1)], 0.0)
 
 
 @dataclass(frozen=True)

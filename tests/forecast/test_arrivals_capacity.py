@@ -4,6 +4,7 @@ demand recovered from the admissions it let in."""
 
 from __future__ import annotations
 
+import dataclasses
 import heapq
 from datetime import time
 from zoneinfo import ZoneInfo
@@ -86,10 +87,10 @@ def test_demand_is_recovered_behind_a_full_unit(escalation: int) -> None:
 
 def test_excess_is_zero_for_a_unit_that_never_fills_and_none_without_beds() -> None:
     state = loss_system(seed=5, escalation=0)
-    roomy = UnitState(**{**state.__dict__, "bed_plan": ((None, 40),)})
+    roomy = dataclasses.replace(state, bed_plan=((None, 40),))
     first = state.stays["admitted_at"].min().date()
     last = state.as_of.date()
     assert capacity_excess(roomy, first, last) == 0
-    unknown = UnitState(**{**state.__dict__, "bed_plan": ()})
+    unknown = dataclasses.replace(state, bed_plan=())
     assert capacity_excess(unknown, first, last) is None
     assert excess_beds(train_arrivals(unknown)) is None

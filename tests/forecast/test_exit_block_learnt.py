@@ -10,6 +10,8 @@ tests/stats/test_exit_block.py.
 
 from __future__ import annotations
 
+import dataclasses
+
 import numpy as np
 import pandas as pd
 
@@ -69,7 +71,7 @@ def _two_units(days: int = 240, beds: int = 4, seed: int = 3, home_rate: float =
                       "value": 1.0, "recorded_at": at})
     sender = unit_state("S", sent.drop(columns="ready"), as_of, beds=10)
     observations = pd.DataFrame(flags, columns=OBSERVATION_COLUMNS)
-    sender = type(sender)(**{**sender.__dict__, "observations": observations})
+    sender = dataclasses.replace(sender, observations=observations)
     return sender, receiver
 
 
@@ -96,13 +98,13 @@ def test_a_flag_set_back_to_zero_ends_the_wait_and_a_later_one_starts_it_again()
         {**first.to_dict(), "observed_at": later, "value": 1.0, "recorded_at": later}])
     stays = sender.stays.copy()
     stays.loc[stays["stay_id"] == stay_id, "discharged_at"] = later + pd.Timedelta(hours=5)
-    changed = type(sender)(**{**sender.__dict__, "stays": stays,
-                              "observations": pd.concat([sender.observations, extra])})
+    changed = dataclasses.replace(sender, stays=stays,
+                                  observations=pd.concat([sender.observations, extra]))
     assert ready_since(changed)[stay_id] == later
     # Set back to 0 for good: not waiting at all.
     final_zero = extra.iloc[[0]].assign(observed_at=later + pd.Timedelta(hours=1))
-    cleared = type(sender)(**{**changed.__dict__,
-                              "observations": pd.concat([changed.observations, final_zero])})
+    cleared = dataclasses.replace(
+        changed, observations=pd.concat([changed.observations, final_zero]))
     assert stay_id not in ready_since(cleared).index
 
 

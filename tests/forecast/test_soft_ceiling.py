@@ -3,6 +3,8 @@ answer is known by construction: one night of escalation beds must not loosen it
 
 from __future__ import annotations
 
+import dataclasses
+
 import numpy as np
 import pandas as pd
 
@@ -48,8 +50,7 @@ def test_one_escalation_night_does_not_loosen_a_loss_units_ceiling() -> None:
         "discharged_at": [night + pd.Timedelta(hours=i + 12) for i in range(4)],
         "admission_type": "emergency", "outcome": None, "age": 60.0, "sex": "f",
         "specialty": "medicine", "source": "ed", "booking_id": None})
-    busy = state.__class__(**{**state.__dict__, "stays": pd.concat([stays, extra],
-                                                                   ignore_index=True)})
+    busy = dataclasses.replace(state, stays=pd.concat([stays, extra], ignore_index=True))
     occupancy = [int(((busy.stays["admitted_at"] <= t)
                       & ~(busy.stays["discharged_at"] <= t)).sum())
                  for t in extra["admitted_at"]]

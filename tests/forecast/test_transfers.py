@@ -10,10 +10,13 @@ from pathlib import Path
 import numpy as np
 import pytest
 
+from app.forecast import stay_grid
+from app.forecast.hospital import forecast_units, load_units
 from app.forecast.models import newest_model
 from app.forecast.routing import Routing
 from app.forecast.service import forecast, model_for, train_model
 from app.ingest import import_file
+from app.state import UnitState
 from app.store import db
 from tests.conftest import UTC_ZONE
 from tests.forecast.known_at import numbers_of
@@ -195,3 +198,29 @@ def test_the_backtest_compares_passing_on_with_a_stream(trained: str) -> None:
         out["stream"]["methods"]["morrow"]["all"]["crps"]
     with pytest.raises(ValueError, match="transfers"), db.session_scope(trained) as session:
         run_backtest(session, WARD, first, last, UTC_ZONE, transfers="both")
+
+
+def test_units_forecast_together_ask_each_unit_once_and_agree_with_each_alone(
+        trained: str, monkeypatch: pytest.MonkeyPatch) -> None:
+    """The hospital's forecasts made together (app/forecast/hospital.py) are each unit's own
+    forecast, number for number, while the sending unit's patients are asked of its model
+    once instead of once for itself and once more for the ward."""
+    asked: list[str] = []
+    real = stay_grid.predict_stays
+
+    def counted(model: object, state: UnitState, instants: object) -> object:
+        asked.append(state.unit)
+        return real(model, state, instants)  # type: ignore[arg-type]
+
+    monkeypatch.setattr(stay_grid, "predict_stays", counted)
+    with db.session_scope(trained) as session:
+        together = forecast_units(session, load_units(session, [CRIT, WARD], NOW, UTC_ZONE),
+                                  paths=500)
+        assert sorted(asked) == [CRIT, WARD]
+        alone = {u: forecast(session, u, NOW, UTC_ZONE, paths=500) for u in (CRIT, WARD)}
+    assert sorted(asked[2:]) == [CRIT, CRIT, WARD]
+    for unit in (CRIT, WARD):
+        made = together[unit]
+        assert made is not None
+        assert made[0] == alone[unit]
+    assert together[WARD] is not None and together[WARD][0]["days"][0]["transfers_in"][CRIT] > 0
