@@ -31,7 +31,7 @@ from app.forecast.los import LosModel, train_los
 from app.forecast.models import newest_model, save_model
 from app.forecast.newcomer_clock import elapsed
 from app.forecast.routing import fit_routing
-from app.forecast.stay_grid import on_instants, predicted_on_grid
+from app.forecast.stay_grid import census_offsets, on_instants, predicted_on_grid
 from app.state import UnitState, load_state
 from app.stats.loss import LOSS_PATHS, LossDraws, draw_losses, losses
 from app.stats.occupancy import (
@@ -306,7 +306,7 @@ def forecast_backdrop(state: UnitState, record: ModelRecord, *, days: int = DEFA
     unbooked = _hourly_stream("elective", state, today, not_yet_booked,
                               arrivals["elective"]["hour_profile"], None,
                               _newcomer_stay(los, "elective"))
-    census_at = np.array([_days_after(h, state.as_of) for h in instants])
+    census_at = census_offsets(state, instants)
     passed: PassedOn | None = None
     fallback: list[ArrivalStream] = []
     if senders is None:

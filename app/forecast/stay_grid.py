@@ -12,21 +12,38 @@ its own forecast or for the units after it. A state with newer scores is a new o
 
 from __future__ import annotations
 
+from collections.abc import Sequence
 from datetime import datetime, timedelta
 from typing import Any
 
 import numpy as np
 import numpy.typing as npt
+import pandas as pd
 
 from app.forecast.los import LosModel, StayPredictions, predict_stays
 from app.state import UnitState
 from app.stats.transfer_presence import leaving_grid
+from app.timeutil import census_instants_after
 
 # Three hours: the curves move by far less than the ceiling's Monte-Carlo error in between
 # (the ceiling's paths interpolate linearly; common practice, no source).
 STEP_DAYS = 0.125
 
 FloatArray = npt.NDArray[np.float64]
+NS_PER_DAY = 86_400e9
+
+
+def census_offsets(state: UnitState, instants: Sequence[datetime]) -> FloatArray:
+    """Days from the state's as_of to each of ``instants`` (its census instants)."""
+    as_of = state.as_of
+    return np.array([(pd.Timestamp(h) - as_of).value / NS_PER_DAY for h in instants],
+                    dtype=float)
+
+
+def own_census_offsets(state: UnitState, count: int) -> FloatArray:
+    """The state's unit's next ``count`` census instants, as days after as_of."""
+    return census_offsets(state, census_instants_after(state.as_of.to_pydatetime(),
+                                                       state.census_time, state.tz, count))
 
 
 def grid_instants(state: UnitState, offsets: FloatArray) -> list[datetime]:

@@ -36,7 +36,7 @@ from sqlalchemy.orm import Session
 from app.forecast.arrivals import emergency_means, unbooked_means
 from app.forecast.los import LosModel
 from app.forecast.routing import Routing
-from app.forecast.stay_grid import predicted_on_grid
+from app.forecast.stay_grid import on_instants, own_census_offsets, predicted_on_grid
 from app.state import UnitState, load_state
 from app.stats.arrivals import DailyRateModel
 from app.stats.occupancy import ArrivalStream, StayMixture, stream_presence
@@ -198,6 +198,21 @@ def fallback_means(streams: Sequence[ArrivalStream], census_at: np.ndarray
     return out
 
 
+def _sender_curves(payload: dict[str, Any], los: LosModel, state: UnitState, h: np.ndarray
+                   ) -> tuple[np.ndarray, np.ndarray, Any]:
+    """The leaving grid u (the receiver's census instants among its instants), the sender's
+    current patients' chance of being still in at each u (1 at u[0] = as_of), and their
+    predictions. Read off the curves the sender's own forecast asks for (on its grid, with
+    its census instants; ``stay_grid``), linear in time between its instants, when they
+    reach the receiver's last census instant; otherwise asked on the receiver's grid."""
+    own, predicted = predicted_on_grid(payload, los, state, own_census_offsets(state, h.size))
+    if own[-1] >= h.max(initial=0.0):
+        u = np.union1d(own, h)
+        return u, on_instants(own, predicted.p_present, u), predicted
+    u, predicted = predicted_on_grid(payload, los, state, h)
+    return u, on_instants(u, predicted.p_present, u), predicted
+
+
 def _from_sender(receiver: UnitState, sender: Sender, h: np.ndarray, g_r: Any,
                  span: list[date], hourly: Any
                  ) -> tuple[np.ndarray, list[str], list[tuple[np.ndarray, float | None]]]:
@@ -209,12 +224,11 @@ def _from_sender(receiver: UnitState, sender: Sender, h: np.ndarray, g_r: Any,
     s_routing = Routing.from_payload(payload)
     assert s_routing is not None
     target = receiver.unit
-    u, predicted = predicted_on_grid(payload, s_los, state, h)
+    u, p_in, predicted = _sender_curves(payload, s_los, state, h)
     n = len(predicted.stay_ids)
     rows = [np.zeros((0, h.size))]
     ids: list[str] = []
     if n:
-        p_in = np.hstack([np.ones((n, 1)), predicted.p_present])
         share = np.array([s_routing.to_unit(target, g) for g in predicted.admission_group])
         rows.append(share[:, None] * passed_presence(p_in, u, h, g_r.sf))
         ids.extend(predicted.stay_ids)

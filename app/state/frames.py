@@ -143,7 +143,14 @@ class UnitState:
         return _widen(current, latest, self.as_of).reset_index(drop=True)
 
     def open_bookings(self) -> pd.DataFrame:
-        """Bookings not cancelled by as_of, not yet admitted, planned for today or later."""
+        """Bookings not cancelled by as_of, not yet admitted, planned for today or later
+        (made once per state and kept in ``memo``: not to be changed in place)."""
+        found = self.memo.get("open_bookings")
+        if found is None:
+            found = self.memo["open_bookings"] = self._open_bookings()
+        return found
+
+    def _open_bookings(self) -> pd.DataFrame:
         today = self.as_of.tz_convert(self.tz).date()
         admitted = set(self.stays["booking_id"].dropna())
         b = self.bookings

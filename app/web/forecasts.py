@@ -73,9 +73,16 @@ def forecast_moment(now: datetime, written_at: datetime | None) -> datetime:
     return moment
 
 
+# Units whose state and model (payload; None: no model) a page has at hand for this as_of:
+# a unit computed after its sending units takes their states as they are, so their patients
+# are asked of their models once (app/forecast/hospital.py, app/forecast/stay_grid.py).
+AtHand = dict[str, tuple[UnitState, dict[str, Any] | None]]
+
+
 def current(session: Session, unit: str, *, as_of: datetime | None = None,
-            days: int = 7) -> Shown:
-    """The forecast for ``unit`` now (to the minute) or at ``as_of``."""
+            days: int = 7, at_hand: AtHand | None = None) -> Shown:
+    """The forecast for ``unit`` now (to the minute) or at ``as_of``; ``at_hand`` (a page
+    showing several units) gains this unit's state when it is computed here."""
     markers = repo.data_markers(session)
     if as_of is None:
         moment = forecast_moment(current_time().astimezone(UTC), markers.written_at)
@@ -101,20 +108,22 @@ def current(session: Session, unit: str, *, as_of: datetime | None = None,
             if key in _cache:
                 return _cache[key]
         backdrop, state = _backdrop(session, (where, unit, model_id, moment, days,
-                                              markers.structure), record, days)
+                                              markers.structure), record, days, at_hand)
         if record is None or backdrop is None:
             shown = Shown(None, state, problem)
         else:
             forecast, inputs = forecast_on(backdrop, state, record)
             shown = Shown(forecast, state, None, expected_admissions(inputs))
         _remember(key, shown)
+        if at_hand is not None:
+            at_hand[unit] = (state, None if record is None else record.payload)
     if as_of is None and record is not None:
         _store_now_and_then(session, shown.forecast, (where, unit, record.id), moment)
     return shown
 
 
-def _backdrop(session: Session, key: tuple[Any, ...], record: ModelRecord | None, days: int
-              ) -> tuple[Backdrop | None, UnitState]:
+def _backdrop(session: Session, key: tuple[Any, ...], record: ModelRecord | None, days: int,
+              at_hand: AtHand | None = None) -> tuple[Backdrop | None, UnitState]:
     """The forecast's backdrop (None without a model) and a state with the current
     observations. Only scores came in since the backdrop was made when its key (with the
     structure marker) is unchanged, so only the observations are read again."""
@@ -123,7 +132,7 @@ def _backdrop(session: Session, key: tuple[Any, ...], record: ModelRecord | None
         _, unit, _, moment, _, _ = key
         state = load_state(session, unit, moment, get_settings().tz, with_history=False)
         backdrop = None if record is None else forecast_backdrop(
-            state, record, days=days, senders=senders_of(session, state, record))
+            state, record, days=days, senders=senders_of(session, state, record, at_hand))
         _backdrops[key] = (backdrop, state)
         while len(_backdrops) > BACKDROPS:
             _backdrops.popitem(last=False)

@@ -53,9 +53,10 @@ def stale_hours(latest: datetime | None, now: datetime) -> int | None:
     return int((now - latest).total_seconds() // 3600)
 
 
-def _unit_row(session: SessionDep, unit: Unit, wall: bool) -> dict[str, Any]:
+def _unit_row(session: SessionDep, unit: Unit, wall: bool, at_hand: forecasts.AtHand
+              ) -> dict[str, Any]:
     """One unit's figures now and tonight, its week's risk and its small chart."""
-    shown = forecasts.current(session, unit.code)
+    shown = forecasts.current(session, unit.code, at_hand=at_hand)
     state = shown.state
     now_local = state.as_of.tz_convert(state.tz)
     today = now_local.date()
@@ -132,7 +133,8 @@ def _render(request: Request, session: SessionDep, wall: bool, refresh: int) -> 
     except bounds.OutOfBounds as exc:
         raise HTTPException(status_code=422, detail=str(exc)) from None
     units = repo.list_units(session)
-    rows = [_unit_row(session, unit, wall) for unit in units]
+    at_hand: forecasts.AtHand = {}      # senders' states for the units after them
+    rows = [_unit_row(session, unit, wall, at_hand) for unit in units]
     now = current_time()
     markers = repo.data_markers(session)
     # Levels for the total: the site's defaults (each unit is coloured by its own).

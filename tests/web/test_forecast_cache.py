@@ -15,8 +15,10 @@ import pytest
 from sqlalchemy import select
 
 from app.config import get_settings
+from app.forecast import stay_grid
 from app.forecast.service import forecast
 from app.ingest import import_file
+from app.state import UnitState
 from app.store import db
 from app.store.models import Stay
 from app.web import forecasts
@@ -121,3 +123,31 @@ def test_one_stored_page_forecast_per_hour_across_workers(trained: str,
         forecasts._store_now_and_then(session, shown.forecast, ("w2", UNIT, "m"),
                                       DEMO_NOW + timedelta(minutes=70))
     assert stored() == 2  # the next hour's is kept
+
+
+def test_a_page_of_several_units_asks_each_units_patients_once(
+        demo_db: str, tmp_path: Path, replayed: None, monkeypatch: pytest.MonkeyPatch) -> None:
+    """The home page computes the demo's critical-care unit before the ward it passes
+    patients on to; the ward takes its state as the page has it (``at_hand``), so the
+    critical-care patients are asked of their model once, and both forecasts still equal
+    `morrow forecast`'s."""
+    url = trained_copy(demo_db, tmp_path, ("KV-CRIT", "KV-SURG"))
+    asked: list[str] = []
+    real = stay_grid.predict_stays
+
+    def counted(model: object, state: UnitState, instants: object) -> object:
+        asked.append(state.unit)
+        return real(model, state, instants)  # type: ignore[arg-type]
+
+    monkeypatch.setattr(stay_grid, "predict_stays", counted)
+    at_hand: forecasts.AtHand = {}
+    with db.session_scope(url) as session:
+        shown = {u: current(session, u, at_hand=at_hand) for u in ("KV-CRIT", "KV-SURG")}
+    assert asked == ["KV-CRIT", "KV-SURG"]
+    assert set(at_hand) == {"KV-CRIT", "KV-SURG"}
+    with db.session_scope(url) as session:
+        for unit, page in shown.items():
+            assert page.forecast is not None
+            _close(page.forecast, forecast(session, unit, DEMO_NOW, UTC_ZONE))
+    assert shown["KV-SURG"].forecast is not None
+    assert shown["KV-SURG"].forecast["days"][0]["transfers_in"]["KV-CRIT"] > 0
