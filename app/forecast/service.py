@@ -290,7 +290,7 @@ def forecast_backdrop(state: UnitState, record: ModelRecord, *, days: int = DEFA
     (:func:`senders_of`); their current patients and admissions to come join this unit's
     forecast (app/forecast/transfers.py). None (a caller without the store): the transfers
     the model learnt come as streams of this unit's own."""
-    los = LosModel.from_payload(record.payload)
+    los = LosModel.of(record.payload)
     arrivals = record.payload["arrivals"]
     instants = census_instants_after(state.as_of.to_pydatetime(), state.census_time, state.tz,
                                      days)

@@ -220,7 +220,7 @@ def _from_sender(receiver: UnitState, sender: Sender, h: np.ndarray, g_r: Any,
     streams' presence in R."""
     assert sender.state is not None and sender.payload is not None
     state, payload = sender.state, sender.payload
-    s_los = LosModel.from_payload(payload)
+    s_los = LosModel.of(payload)
     s_routing = Routing.from_payload(payload)
     assert s_routing is not None
     target = receiver.unit

@@ -400,9 +400,10 @@ def with_current(p_current: npt.ArrayLike, others: Newcomers, beds: Sequence[int
             p_grid = interpolated_current(p_now, draws.grid[draws.census_index], draws.grid)
         lost = losses(draws, p_grid, ceiling)
     out = []
+    current = poisson_binomial_pmf(p_now)          # every instant's at once: (K, stays + 1)
     for k in range(n_instants):
         checkpoint()
-        fixed = convolve_pmfs(poisson_binomial_pmf(p_now[:, k]), others.booked[k])
+        fixed = convolve_pmfs(current[k], others.booked[k])
         arriving = others.arriving[k]
         stream_mean = others.arriving_mean[k]
         pmf = convolve_pmfs(fixed, *arriving.values())
@@ -442,22 +443,18 @@ def waiting_when_full(own: FloatArray, passed: FloatArray, limit: int | None
     if limit is None:
         pmf = convolve_pmfs(a, b)
         return pmf, pmf_mean(b)
-    out = np.zeros(max(a.size + b.size - 1, 1))
-    b_tail = np.cumsum(b[::-1])[::-1]       # P(B >= y)
-    y = np.arange(b.size)
-    expected = 0.0
-    for count in np.flatnonzero(a > 0):
-        room = max(int(limit) - int(count), 0)
-        if room + 1 >= b.size:
-            out[count:count + b.size] += a[count] * b
-            expected += float(a[count] * (y * b).sum())
-            continue
-        out[count:count + room] += a[count] * b[:room]
-        out[count + room] += a[count] * b_tail[room]
-        expected += float(a[count] * ((y[:room] * b[:room]).sum() + room * b_tail[room]))
-    nonzero = np.flatnonzero(out > 0)
-    out = out[: int(nonzero[-1]) + 1] if nonzero.size else np.ones(1)
-    return out / out.sum(), expected
+    count = np.flatnonzero(a > 0)
+    room = np.maximum(int(limit) - count, 0)
+    # (own count, passed-on count) pairs: min(B, room) of them are in.
+    admitted = np.minimum(np.arange(b.size)[None, :], room[:, None])
+    weight = a[count][:, None] * b[None, :]
+    total: FloatArray = np.asarray(np.bincount(
+        (count[:, None] + admitted).ravel(), weights=weight.ravel(),
+        minlength=max(a.size + b.size - 1, 1)), dtype=float)
+    expected = float((weight * admitted).sum())
+    nonzero = np.flatnonzero(total > 0)
+    total = total[: int(nonzero[-1]) + 1] if nonzero.size else np.ones(1)
+    return total / total.sum(), expected
 
 
 def _blocked(exact: FloatArray, stream_mean: Mapping[str, float], lost: Losses, k: int,

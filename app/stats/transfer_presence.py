@@ -25,6 +25,7 @@ from __future__ import annotations
 
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field
+from functools import cached_property
 from typing import Any
 
 import numpy as np
@@ -148,10 +149,15 @@ class PassedOn:
     def n_instants(self) -> int:
         return int(self.p.shape[1])
 
+    @cached_property
+    def _rows_pmf(self) -> FloatArray:
+        """(K, rows + 1) the Bernoulli rows' count at every instant."""
+        return poisson_binomial_pmf(self.p)
+
     def pmf(self, k: int) -> FloatArray:
         """The count passed on and still in R at instant k (Poisson-binomial and the streams'
         day-by-day counts, convolved)."""
-        parts = [poisson_binomial_pmf(self.p[:, k])]
+        parts = [self._rows_pmf[k]]
         for presence, size in self.future:
             day_means = presence[:, k]
             if size is None:

@@ -25,6 +25,11 @@ from app.stats.survival_tree import (
     time_of_cumulative_hazard,
 )
 
+# Models made from payloads lately, by the payload's id (the payload is kept with its model,
+# so the id cannot be reused while the entry lives).
+MADE_SIZE = 32
+_MADE: dict[int, tuple[Mapping[str, Any], LosModel]] = {}
+
 
 @dataclass(frozen=True, eq=False)
 class LosModel:
@@ -47,6 +52,20 @@ class LosModel:
                    hazard=HazardTreeModel.from_dict(los["hazard"]),
                    groups=StayGroups.from_dict(los["groups"]), census_time=time(hh, mm),
                    horizon=int(los["horizon_steps"]))
+
+    @classmethod
+    def of(cls, payload: Mapping[str, Any]) -> LosModel:
+        """:meth:`from_payload`, made once per payload object while it is among the last
+        few asked for (the model is immutable; a hospital's forecast reads each unit's model
+        for its own forecast and for each unit it passes patients on to)."""
+        found = _MADE.get(id(payload))
+        if found is not None and found[0] is payload:
+            return found[1]
+        model = cls.from_payload(payload)
+        _MADE[id(payload)] = (payload, model)
+        while len(_MADE) > MADE_SIZE:
+            _MADE.pop(next(iter(_MADE)))
+        return model
 
     def curves(self, covariates: FloatArray, days_in: FloatArray,
                observed: Mapping[str, FloatArray], at_ns: IntArray, tz: ZoneInfo,
