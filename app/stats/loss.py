@@ -313,8 +313,10 @@ def _arrivals(stream: Any, last: float, n_paths: int, rng: np.random.Generator
     on_day = np.repeat(np.tile(np.arange(days.size), n_paths), n.ravel())
     cumulative = np.cumsum(mean)
     before = np.r_[0.0, np.cumsum(day_mean)][:-1]
-    slot = np.searchsorted(cumulative, before[on_day] + rng.random(total) * day_mean[on_day],
-                           side="right")
+    # side="right": the first slot whose cumulative mean exceeds the draw (one past the
+    # last that does not), through the bucket table.
+    draw = before[on_day] + rng.random(total) * day_mean[on_day]
+    slot = _search_left(cumulative, np.nextafter(draw, np.inf))
     first = np.searchsorted(day_of, np.arange(days.size))
     last_slot = np.r_[first[1:], day_of.size] - 1
     slot = np.clip(slot, first[on_day], last_slot[on_day])

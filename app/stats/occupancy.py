@@ -265,10 +265,11 @@ def newcomers(booked: BookedAdmissions, streams: Sequence[ArrivalStream],
     h = np.asarray(census_at, dtype=float)
     p_booked = booked.p_present(h)
     presence = [stream_presence(s, h) for s in streams]
+    booked_pmfs = poisson_binomial_pmf(p_booked.reshape(-1, h.size))
     pmfs, arriving, arriving_mean = [], [], []
     for k in range(h.size):
         checkpoint()
-        pmfs.append(poisson_binomial_pmf(p_booked[:, k]))
+        pmfs.append(booked_pmfs[k])
         by_name: dict[str, list[FloatArray]] = {}
         means: dict[str, float] = {}
         for stream, present in zip(streams, presence, strict=True):

@@ -160,7 +160,8 @@ def poisson_pmf(mean: float, kmax: int | None = None, *, tail: float = DEFAULT_T
     if mean == 0:
         return np.ones(1) if not kmax else np.r_[1.0, np.zeros(kmax)]
     if kmax is None:
-        found = _direct(mean, math.sqrt(mean), tail, lambda k: stats.poisson.sf(k, mean),
+        # scipy.stats.poisson.sf is special.pdtrc; called directly it costs a tenth.
+        found = _direct(mean, math.sqrt(mean), tail, lambda k: special.pdtrc(k, mean),
                         lambda k: k * math.log(mean) - mean - special.gammaln(k + 1))
         if found is not None:
             return found
@@ -215,7 +216,9 @@ def negative_binomial_pmf(
     p = size / (size + mean)
     if kmax is None:
         found = _direct(mean, math.sqrt(mean + mean * mean / size), tail,
-                        lambda k: stats.nbinom.sf(k, size, p),
+                        # P(X > k) = I_{1-p}(k + 1, size), the regularized incomplete
+                        # beta function (scipy.stats.nbinom.sf's value, without its cost).
+                        lambda k: special.betainc(k + 1, size, 1.0 - p),
                         lambda k: (special.gammaln(k + size) - special.gammaln(size)
                                    - special.gammaln(k + 1) + size * math.log(p)
                                    + k * math.log1p(-p)))
