@@ -407,6 +407,19 @@ LEVEL_LOOKBACK_HALF_LIVES = 8
 
 def emergency_means(state: UnitState, arrivals: Mapping[str, Any], span: list[date]
                     ) -> list[float]:
+    """:func:`_emergency_means`, kept with the state for these arrivals (a unit's own
+    forecast and the units it passes patients on to ask the same)."""
+    key = ("emergency_means", id(arrivals), tuple(span))
+    found = state.memo.get(key)
+    if found is not None and found[0] is arrivals:
+        return list(found[1])
+    means = _emergency_means(state, arrivals, span)
+    state.memo[key] = (arrivals, tuple(means))
+    return means
+
+
+def _emergency_means(state: UnitState, arrivals: Mapping[str, Any], span: list[date]
+                     ) -> list[float]:
     """Expected emergency demand on each local day of ``span`` (the first is today), as of
     ``state.as_of``.
 

@@ -234,14 +234,23 @@ def _from_sender(receiver: UnitState, sender: Sender, h: np.ndarray, g_r: Any,
         ids.extend(predicted.stay_ids)
     span_days = float(h.max()) + 0.25 if h.size else 1.0
     kernel = tandem_kernel(g_r.sf, span_days)
-    tandem: dict[int, TandemStay] = {}
+    through: dict[int, np.ndarray] = {}
+
+    def tandem(parts: list[tuple[float, int]]) -> TandemStay:
+        """The tandem stay of S's groups ``(weight, group)``: each group's term (its stay
+        through R's kernel, ``TandemStay.on_kernel``) made once, then weighted."""
+        h_x = np.zeros(kernel[0].size)
+        for weight, group in parts:
+            if weight <= 0:
+                continue
+            if group not in through:
+                law = s_los.groups.get(group).distribution
+                through[group] = TandemStay.on_kernel([(1.0, law.sf)], kernel).h
+            h_x += weight * through[group]
+        return TandemStay(kernel[0], h_x)
 
     def tandem_of(group: int) -> TandemStay:
-        if group not in tandem:
-            law = s_los.groups.get(group).distribution
-            tandem[group] = TandemStay.on_kernel([(s_routing.to_unit(target, group), law.sf)],
-                                                 kernel)
-        return tandem[group]
+        return tandem([(s_routing.to_unit(target, group), group)])
 
     bookings = state.open_bookings()
     bookings = bookings.loc[bookings["planned_date"] <= span[-1]] if len(bookings) else bookings
@@ -265,11 +274,11 @@ def _from_sender(receiver: UnitState, sender: Sender, h: np.ndarray, g_r: Any,
             ("elective", unbooked_means(arrivals["elective"], span,
                                         state.as_of.tz_convert(state.tz).to_pydatetime()),
              arrivals["elective"]["hour_profile"], None)):
-        parts = [(g.share.get(kind, 0.0) * s_routing.to_unit(target, g.node),
-                  g.distribution.sf) for g in s_los.groups.groups]
-        if sum(w for w, _ in parts) <= 0:
+        weights = [(g.share.get(kind, 0.0) * s_routing.to_unit(target, g.node), g.node)
+                   for g in s_los.groups.groups]
+        if sum(w for w, _ in weights) <= 0:
             continue
-        stay = TandemStay.on_kernel(parts, kernel)
+        stay = tandem(weights)
         stream = hourly(kind, state, span[0], means, profile, size, stay)
         streams.append((stream_presence(stream, h), size))
     return np.vstack(rows), ids, streams

@@ -257,8 +257,12 @@ def time_of_cumulative_hazard(profile: DischargeProfile, rates: npt.ArrayLike,
                               bounds: npt.ArrayLike, days_in: npt.ArrayLike,
                               target: float) -> FloatArray:
     """First local-day instant where the cumulative hazard reaches ``target`` (NaN if not
-    within the bounds). With ``target = log 2`` this is the median time of leaving. Found by
-    bisection inside the interval where it is reached (exposure is increasing in time)."""
+    within the bounds). With ``target = log 2`` this is the median time of leaving.
+
+    Inside the interval where it is reached the exposure is linear between clock-hour
+    boundaries and day-of-stay edges (the profile is constant there), so it is found exactly:
+    the exposure at every such cut at once, then linearly within the cut where it is
+    passed."""
     r = np.asarray(rates, dtype=float)
     b = np.asarray(bounds, dtype=float)
     d = np.asarray(days_in, dtype=float)
@@ -276,11 +280,27 @@ def time_of_cumulative_hazard(profile: DischargeProfile, rates: npt.ArrayLike,
     lo = b[rows, step].copy()
     hi = b[rows, step + 1].copy()
     start_days = d[rows] + (lo - b[rows, 0])
-    base = lo.copy()
-    for _ in range(24):  # 2^-24 of a day is 5 ms
-        mid = 0.5 * (lo + hi)
-        enough = profile.exposure(base, mid, start_days) >= need
-        hi = np.where(enough, mid, hi)
-        lo = np.where(enough, lo, mid)
-    out[rows] = hi
+    out[rows] = _exposure_reached(profile, lo, hi, start_days, need)
     return out
+
+
+def _exposure_reached(profile: DischargeProfile, lo: FloatArray, hi: FloatArray,
+                      start_days: FloatArray, need: FloatArray) -> FloatArray:
+    """Per row, the first instant t in [lo, hi] with exposure(lo, t) >= need (hi if none)."""
+    hours = int(np.ceil(float(np.max(hi - lo)) * 24.0)) + 1
+    on_hour = (np.floor(lo * 24.0)[:, None] + np.arange(1, hours + 1)[None, :]) / 24.0
+    edges = lo[:, None] + (profile.stay_edges[None, :] - start_days[:, None])
+    cuts = np.concatenate([on_hour, edges, hi[:, None]], axis=1)
+    cuts = np.sort(np.where((cuts > lo[:, None]) & (cuts < hi[:, None]), cuts, np.inf), axis=1)
+    cuts = np.concatenate([lo[:, None], np.where(np.isinf(cuts), hi[:, None], cuts)], axis=1)
+    m = cuts.shape[1]
+    reached = profile.exposure(np.repeat(lo, m), cuts.ravel(),
+                               np.repeat(start_days, m)).reshape(cuts.shape)
+    enough = reached >= need[:, None]
+    j = np.where(enough.any(axis=1), np.argmax(enough, axis=1), m - 1)
+    rows = np.arange(lo.size)
+    prev = np.maximum(j - 1, 0)
+    e0, e1 = reached[rows, prev], reached[rows, j]
+    t0, t1 = cuts[rows, prev], cuts[rows, j]
+    frac = np.where(e1 > e0, (need - e0) / np.where(e1 > e0, e1 - e0, 1.0), 1.0)
+    return np.where(j == 0, cuts[:, 0], t0 + np.clip(frac, 0.0, 1.0) * (t1 - t0))
