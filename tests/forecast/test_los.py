@@ -30,6 +30,7 @@ from app.forecast.los import (
     survival_metrics,
     train_los,
 )
+from app.forecast.los.selection import ENSEMBLE_GRID, ENSEMBLE_MAX_ITER
 from app.state.frames import UnitState, latest_observations
 from app.state.load import load_state
 from app.stats.stay_groups import round_up_to_hours
@@ -170,6 +171,26 @@ def test_test_metrics_beat_the_no_covariate_kaplan_meier(payloads: dict[str, dic
     assert tree["ibs_1_14"] < km["ibs_1_14"]
     assert tree["r2_completed"] > km["r2_completed"]
     assert "ensemble" in metrics and metrics["landmarks"] > 500
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("unit", UNITS)
+def test_the_yardstick_is_tuned_by_validation(payloads: dict[str, dict], unit: str) -> None:
+    """The boosted ensemble that measures what the readable tree gives up has its settings
+    and rounds chosen by the validation log-likelihood (never by the test period), and is
+    then scored on the test period like the tree."""
+    found = payloads[unit]["los"]["selection"]["ensemble"]
+    grid, chosen = found["grid"], found["chosen"]
+    assert [{k: g[k] for k in ENSEMBLE_GRID[0]} for g in grid] == list(ENSEMBLE_GRID)
+    assert chosen == max(grid, key=lambda g: g["val_loglik"])
+    assert all(1 <= g["iterations"] <= ENSEMBLE_MAX_ITER for g in grid)
+    metrics = payloads[unit]["metrics"]
+    assert metrics["ensemble_iterations"] == chosen["iterations"]
+    assert metrics["ensemble_settings"] == {k: chosen[k] for k in ENSEMBLE_GRID[0]}
+    gap = metrics["ensemble_gap"]["ibs_1_14"]
+    print(f"\n{unit}: tree {metrics['tree']['ibs_1_14']:.4f}, tuned yardstick "
+          f"{metrics['ensemble']['ibs_1_14']:.4f} ({gap:+.1%} for the tree), {chosen}")
+    assert np.isfinite(gap)
 
 
 def _one_day_leaving(model: LosModel, state: UnitState, stay: pd.Series, start: datetime,

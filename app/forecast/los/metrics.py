@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+from collections.abc import Mapping
 from dataclasses import replace
 from typing import Any
 from zoneinfo import ZoneInfo
@@ -165,7 +166,7 @@ def _thin_rows(rows: IntervalRows, limit: int, rng: np.random.Generator) -> Inte
 
 
 def _test_metrics(model: LosModel, train_lm: Landmarks, train_rows: IntervalRows,
-                  test_lm: Landmarks, tz: ZoneInfo, ensemble_iter: int | None
+                  test_lm: Landmarks, tz: ZoneInfo, ensemble: Mapping[str, Any] | None
                   ) -> dict[str, Any]:
     from app.stats.kaplan_meier import kaplan_meier
 
@@ -180,17 +181,18 @@ def _test_metrics(model: LosModel, train_lm: Landmarks, train_rows: IntervalRows
     km = kaplan_meier(round_up_to_hours(table.days), table.ended)
     baseline = survival_metrics(event, remaining, *_km_summaries(km, test_lm.days_in))
     out["tree"], out["km"] = tree, baseline
-    if ensemble_iter is not None:
+    if ensemble is not None:
         rows = _thin_rows(train_rows, MAX_ENSEMBLE_ROWS, np.random.default_rng(1))
         x = _ensemble_x(_row_matrix(model.design, train_lm, rows), _rows_weekday(rows))
         exposure = model.hazard.profile.exposure(rows.start, rows.stop, rows.days_in)
         keep = exposure > 1e-12
-        ensemble = _boosted(ensemble_iter)
+        boosted_model = _boosted(ensemble["iterations"], **{
+            k: v for k, v in ensemble.items() if k not in ("iterations", "val_loglik")})
         x_test = _ensemble_x(curves.x, _interval_weekday(curves.bounds_local).ravel())
         with _one_thread():
-            ensemble.fit(x[keep], rows.event[keep] / exposure[keep],
-                         sample_weight=(rows.weight * exposure)[keep])
-            boosted = curves.with_rates(ensemble.predict(x_test))
+            boosted_model.fit(x[keep], rows.event[keep] / exposure[keep],
+                              sample_weight=(rows.weight * exposure)[keep])
+            boosted = curves.with_rates(boosted_model.predict(x_test))
         out["ensemble"] = survival_metrics(event, remaining,
                                            *_curve_summaries(boosted, test_lm.at_ns))
         # What the readable tree gives up, relative to the ensemble (positive: tree worse).

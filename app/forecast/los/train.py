@@ -118,10 +118,10 @@ def train_los(state: UnitState, *, test_days: float | None = None,
     split = _validation_split(train_lm, test_from, state.census_time, tz, names, rng)
     params, grid = _select_hazard(split)
     validation_model = params.pop("validation_model")
-    ensemble_iter: int | None = None
-    ensemble_scores: list[float] = []
+    ensemble: dict[str, Any] | None = None
+    ensemble_grid: list[dict[str, Any]] = []
     if compare and evaluate and validation_model is not None:
-        ensemble_iter, ensemble_scores = _select_ensemble(split, validation_model)
+        ensemble, ensemble_grid = _select_ensemble(split, validation_model)
     del split, validation_model
     group_params, group_grid = _select_groups(
         make_design(train_lm, interval_rows(train_lm, state.census_time, tz, rng=rng,
@@ -142,9 +142,11 @@ def train_los(state: UnitState, *, test_days: float | None = None,
         metrics.update({"test_from": _iso(test_from, tz), "test_to": _iso(until_ns, tz)})
         if test_lm.size:
             metrics.update(_test_metrics(model_t, train_lm, train_rows, test_lm, tz,
-                                         ensemble_iter))
-        if ensemble_iter is not None:
-            metrics["ensemble_iterations"] = ensemble_iter
+                                         ensemble))
+        if ensemble is not None:
+            metrics["ensemble_iterations"] = ensemble["iterations"]
+            metrics["ensemble_settings"] = {k: v for k, v in ensemble.items()
+                                            if k not in ("iterations", "val_loglik")}
         del train_rows, model_t
 
     # 3. The stored model: everything known at until, the same sizes.
@@ -175,9 +177,8 @@ def train_los(state: UnitState, *, test_days: float | None = None,
                            for n in hazard.tree.leaves},
             "groups": groups.to_dict(),
             "selection": {"hazard": {"chosen": params, "grid": grid},
-                          "ensemble": ({"iterations": ensemble_iter,
-                                        "val_loglik": max(ensemble_scores)}
-                                       if ensemble_iter is not None else None),
+                          "ensemble": ({"chosen": ensemble, "grid": ensemble_grid}
+                                       if ensemble is not None else None),
                           "groups": {"chosen": group_params, "grid": group_grid},
                           "newcomer_clock": newcomer_clock},
             "uses": CURVE_USES,
