@@ -108,12 +108,38 @@ class LossDraws:
 
 
 def _stay_table(stay: Any, tau: FloatArray) -> tuple[FloatArray, FloatArray]:
-    """The stay's survival S on an hourly lattice of lags up to the grid's span, made
-    non-increasing: interpolated linearly in between (a length-of-stay survival of days moves
-    by far less than the paths' Monte-Carlo error within an hour)."""
+    """The stay's survival S on the hourly lattice of lags 0, 1/24, ... past the grid's span,
+    made non-increasing: interpolated linearly in between (a length-of-stay survival of days
+    moves by far less than the paths' Monte-Carlo error within an hour)."""
     top = float(tau[-1] - tau[0]) if tau.size else 0.0
-    knots = np.linspace(0.0, top, max(int(np.ceil(top * 24)), 1) + 1)
-    return knots, np.minimum.accumulate(np.asarray(stay.sf(knots), dtype=float))
+    count = max(int(np.ceil(top * 24)), 1)
+    return np.arange(count + 1) / 24.0, np.minimum.accumulate(hourly_sf(stay, count))
+
+
+# Survival on the hourly lattice per distribution object, kept while among the last few used
+# (a model's group distributions serve every forecast made with it; the object is kept with
+# its values, so its id is not reused while the entry lives).
+HOURLY_KEPT = 256
+_HOURLY: dict[int, tuple[Any, FloatArray]] = {}
+
+
+def hourly_sf(stay: Any, count: int) -> FloatArray:
+    """``stay.sf`` at 0, 1/24, ..., count/24 days; a mixture (``weights``, ``components``) as
+    the weighted sum of its components', each evaluated once per object."""
+    if hasattr(stay, "components") and hasattr(stay, "weights"):
+        return np.asarray(sum((w * hourly_sf(c, count)
+                               for w, c in zip(stay.weights, stay.components, strict=True)),
+                              start=np.zeros(count + 1)), dtype=float)
+    found = _HOURLY.get(id(stay))
+    if found is not None and found[0] is stay and found[1].size > count:
+        return found[1][: count + 1]
+    size = max(count + 1, 24 * 10 + 1)      # ten days: every forecast's week fits
+    values = np.asarray(stay.sf(np.arange(size) / 24.0), dtype=float)
+    values.setflags(write=False)
+    _HOURLY[id(stay)] = (stay, values)
+    while len(_HOURLY) > HOURLY_KEPT:
+        _HOURLY.pop(next(iter(_HOURLY)))
+    return values[: count + 1]
 
 
 def _search_left(values: FloatArray, queries: FloatArray) -> IntArray:
