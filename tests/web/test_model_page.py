@@ -19,6 +19,7 @@ import pytest
 
 from app.config import get_settings
 from app.forecast import backtest_jobs, training_jobs
+from app.forecast.models import newest_model
 from app.ingest import import_file
 from app.state import load_state
 from app.store import db
@@ -27,6 +28,7 @@ from app.web import model_page, model_track
 from app.web.app import create_app
 from tests.conftest import UTC_ZONE
 from tests.security.fixtures import form_csrf, make_user, signed_in_client
+from tests.web.served import trained_copy
 
 PASSWORD = "a long test password"
 DEMO_NOW = datetime(2026, 11, 30, 8, 0, tzinfo=UTC)
@@ -227,3 +229,24 @@ def test_without_a_model_the_page_names_the_step_in_words(demo_copy: str) -> Non
     assert page.status_code == 200
     assert "No model has been trained for KV-CRIT yet" in page.text
     assert "/units/KV-CRIT/training" in page.text and "morrow train" not in page.text
+
+
+def test_the_page_says_how_the_yardstick_was_chosen(
+        demo_db: str, tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    url = trained_copy(demo_db, tmp_path, ("KV-CRIT",))
+    monkeypatch.setenv("MORROW_NOW", DEMO_NOW.isoformat())
+    get_settings.cache_clear()
+    make_user(url, "viewer.model", "viewer", PASSWORD)
+    with db.session_scope(url) as session:
+        found = newest_model(session, "KV-CRIT", DEMO_NOW)
+    assert found is not None
+    metrics = found[2]["metrics"]
+    settings, gap = metrics["ensemble_settings"], metrics["ensemble_gap"]["ibs_1_14"]
+    page = signed_in_client(create_app(url), "viewer.model", PASSWORD).get(
+        "/units/KV-CRIT/model")
+    assert page.status_code == 200
+    assert (f"{metrics['ensemble_iterations']} rounds at learning rate "
+            f"{settings['learning_rate']}, up to {settings['max_leaf_nodes']} leaves of at "
+            f"least {settings['min_samples_leaf']} patient-days") in page.text
+    assert (f"the tree is {abs(gap) * 100:.1f}% {'worse' if gap > 0 else 'better'} "
+            "than it") in page.text
