@@ -10,15 +10,14 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from app.forecast import stay_grid
 from app.forecast.hospital import forecast_units, load_units
 from app.forecast.models import newest_model
 from app.forecast.routing import Routing
 from app.forecast.service import forecast, model_for, train_model
 from app.ingest import import_file
-from app.state import UnitState
 from app.store import db
 from tests.conftest import UTC_ZONE
+from tests.forecast.asked import count_asked
 from tests.forecast.known_at import numbers_of
 from tests.forecast.two_units import (
     CRIT,
@@ -205,14 +204,7 @@ def test_units_forecast_together_ask_each_unit_once_and_agree_with_each_alone(
     """The hospital's forecasts made together (app/forecast/hospital.py) are each unit's own
     forecast, number for number, while the sending unit's patients are asked of its model
     once instead of once for itself and once more for the ward."""
-    asked: list[str] = []
-    real = stay_grid.predict_stays
-
-    def counted(model: object, state: UnitState, instants: object) -> object:
-        asked.append(state.unit)
-        return real(model, state, instants)  # type: ignore[arg-type]
-
-    monkeypatch.setattr(stay_grid, "predict_stays", counted)
+    asked = count_asked(monkeypatch)
     with db.session_scope(trained) as session:
         together = forecast_units(session, load_units(session, [CRIT, WARD], NOW, UTC_ZONE),
                                   paths=500)

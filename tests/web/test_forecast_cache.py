@@ -15,15 +15,14 @@ import pytest
 from sqlalchemy import select
 
 from app.config import get_settings
-from app.forecast import stay_grid
 from app.forecast.service import forecast
 from app.ingest import import_file
-from app.state import UnitState
 from app.store import db
 from app.store.models import Stay
 from app.web import forecasts
 from app.web.forecasts import current, forecast_moment
 from tests.conftest import UTC_ZONE
+from tests.forecast.asked import count_asked
 from tests.web.served import DEMO_NOW, trained_copy
 
 UNIT = "KV-CRIT"
@@ -132,14 +131,7 @@ def test_a_page_of_several_units_asks_each_units_patients_once(
     critical-care patients are asked of their model once, and both forecasts still equal
     `morrow forecast`'s."""
     url = trained_copy(demo_db, tmp_path, ("KV-CRIT", "KV-SURG"))
-    asked: list[str] = []
-    real = stay_grid.predict_stays
-
-    def counted(model: object, state: UnitState, instants: object) -> object:
-        asked.append(state.unit)
-        return real(model, state, instants)  # type: ignore[arg-type]
-
-    monkeypatch.setattr(stay_grid, "predict_stays", counted)
+    asked = count_asked(monkeypatch)
     at_hand: forecasts.AtHand = {}
     with db.session_scope(url) as session:
         shown = {u: current(session, u, at_hand=at_hand) for u in ("KV-CRIT", "KV-SURG")}
