@@ -259,7 +259,12 @@ def _select_groups(design: Design, stays: pd.DataFrame, cutoff_ns: int
     # Scored are the validation stays within the fitted stays' follow-up; they must run past
     # the last day scored (scikit-survival refuses times beyond the test data's follow-up).
     in_range = y_val["time"] <= y_fit["time"].max()
-    usable = (int(in_range.sum()) >= 20 and y_val["time"][in_range].max() > times[-1]
+    # Nor may a day scored come before the shortest of them (scikit-survival refuses those
+    # too): where no validation stay ended within a day, the score starts at day 2.
+    if in_range.any():
+        times = times[times >= y_val["time"][in_range].min()]
+    usable = (int(in_range.sum()) >= 20 and times.size >= 2
+              and y_val["time"][in_range].max() > times[-1]
               and y_fit["time"].max() > times[-1])
     for depth in GROUP_DEPTH_GRID:
         for share in (0.05,):
