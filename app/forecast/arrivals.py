@@ -279,6 +279,11 @@ def train_arrivals(state: UnitState, units: Collection[str] = ()) -> dict[str, A
     rate = (fit_daily_rate(days, counts, exposure=exposure, seasonal=True,
                            level_half_life=choice.level_half_life) if choice.seasonal
             else replace(plain, level_half_life=choice.level_half_life))
+    if choice.heldout_days:
+        # The forecast's spread is that of the held-out days around what the chosen terms
+        # forecast for them, not the in-sample scatter around the fitted curve (which counts a
+        # change of level the local level removes, and misses the level's own error).
+        rate = replace(rate, alpha=choice.alpha)
     elective = ~emergency
     return {
         "emergency": {

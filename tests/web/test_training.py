@@ -195,6 +195,7 @@ def test_the_page_starts_a_real_training_process_and_shows_it(
     shown = manager.get("/units/KV-CRIT/model").text
     assert "Emergency demand: which patterns the forecast uses" in shown
     assert "Chosen by replaying the last 13 weeks" in shown
+    assert "is measured on the same 91 replayed days" in shown  # the held-out dispersion
     done_page = TestClient(app).get("/units/KV-CRIT/training", follow_redirects=False)
     assert done_page.status_code == 303  # signed out: sent to sign in, nothing shown
     db.release_engine(url)
