@@ -175,19 +175,30 @@ def _booked(state: UnitState, los: LosModel, elective: dict[str, Any], last_day:
         return BookedAdmissions((), (), ())
     today = state.as_of.tz_convert(state.tz).date()
     frame = bookings.assign(admission_type="elective")
-    groups = los.groups.group_of(los.design.covariate_matrix(frame))
+    covariates = los.design.covariate_matrix(frame)
     p_go_by_lead = elective["p_go_by_lead"]
     hour = admit_hour(elective["hour_profile"])
     p_go, admit_at, stays = [], [], []
-    for planned, group in zip(bookings["planned_date"], groups, strict=True):
+    for planned, row in zip(bookings["planned_date"], covariates, strict=True):
         lead = min((planned - today).days, MAX_LEAD)
         when = localize(datetime.combine(planned, time(0)) + timedelta(hours=hour), state.tz)
         # A booking for today whose usual admission hour has passed may still come.
         offset = max(_days_after(when, state.as_of), 1 / 24)
         p_go.append(float(p_go_by_lead[lead]))
         admit_at.append(offset)
-        stays.append(newcomer_stay_of(los, los.groups.get(int(group))))
+        stays.append(_booked_stay(los, row))
     return BookedAdmissions(tuple(p_go), tuple(admit_at), tuple(stays))
+
+
+def _booked_stay(los: LosModel, covariates: np.ndarray) -> Any:
+    """A booking's stay: its group's, or where the booking lacks a value the admission tree
+    splits on, the mixture of the elective groups its known values allow
+    (``StayGroups.leaves_given``)."""
+    weights = los.groups.leaves_given(covariates, "elective")
+    parts = [newcomer_stay_of(los, los.groups.get(n)) for n in weights]
+    if len(parts) == 1:
+        return parts[0]
+    return StayMixture(tuple(weights.values()), tuple(parts))
 
 
 def _with_clock(los: LosModel, state: UnitState, census_at: np.ndarray,

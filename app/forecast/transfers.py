@@ -249,21 +249,19 @@ def _from_sender(receiver: UnitState, sender: Sender, h: np.ndarray, g_r: Any,
             h_x += weight * through[group]
         return TandemStay(kernel[0], h_x)
 
-    def tandem_of(group: int) -> TandemStay:
-        return tandem([(s_routing.to_unit(target, group), group)])
-
     bookings = state.open_bookings()
     bookings = bookings.loc[bookings["planned_date"] <= span[-1]] if len(bookings) else bookings
     if len(bookings):
         from app.forecast.service import _booked
 
         booked = _booked(state, s_los, payload["arrivals"]["elective"], span[-1])
-        groups = s_los.groups.group_of(
-            s_los.design.covariate_matrix(bookings.assign(admission_type="elective")))
-        for j, (g, a, b_id) in enumerate(zip(groups, booked.admit_at, bookings["booking_id"],
-                                             strict=True)):
-            lag = h - a
-            rows.append((booked.p_go[j] * tandem_of(int(g)).sf(lag))[None, :])
+        covariates = s_los.design.covariate_matrix(bookings.assign(admission_type="elective"))
+        for j, (row, a, b_id) in enumerate(zip(covariates, booked.admit_at,
+                                               bookings["booking_id"], strict=True)):
+            # The groups the booking's known values allow (as its own unit's forecast).
+            through_r = tandem([(w * s_routing.to_unit(target, g), g) for g, w in
+                                s_los.groups.leaves_given(row, "elective").items()])
+            rows.append((booked.p_go[j] * through_r.sf(h - a))[None, :])
             ids.append(f"booking:{b_id}")
     streams = []
     arrivals = payload["arrivals"]

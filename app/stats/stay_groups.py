@@ -139,6 +139,38 @@ class StayGroups:
         except KeyError:
             raise ValueError(f"node: {node!r} is not a leaf of the admission tree") from None
 
+    def leaves_given(self, x: npt.ArrayLike, admission_type: str) -> dict[int, float]:
+        """The groups a patient still to come may fall in, from the values known in advance.
+
+        A booking records less than a stay (often no age, sex or source) and may name its
+        specialty differently; those values are NaN in ``x`` (one row of admission
+        covariates). Where the tree splits on one of them the booking may go either way, so
+        every branch is followed, and each leaf reached is weighted by its share of the
+        ``admission_type``'s training stays: the type's mixture (:meth:`mixture_sf`) kept to
+        the leaves the known values allow. (For a stay NaN means "not recorded" and follows
+        the tree's missing-value side, :meth:`group_of`.) Returns leaf id: weight, summing to 1.
+        """
+        row = np.asarray(x, dtype=float).reshape(-1)
+        tree = self.tree
+        leaves = set(int(n) for n in tree.leaves)
+        stack, reached = [0], []
+        while stack:
+            node = stack.pop()
+            if node in leaves:
+                reached.append(node)
+                continue
+            value = row[int(tree.feature[node])]
+            if np.isnan(value):
+                stack += [int(tree.left[node]), int(tree.right[node])]
+            else:
+                stack.append(int(tree.left[node] if value <= tree.threshold[node]
+                                 else tree.right[node]))
+        weights = {n: float(self.get(n).share.get(admission_type, 0.0)) for n in reached}
+        if sum(weights.values()) <= 0:  # no stay of that type there: by the leaves' sizes
+            weights = {n: float(tree.weight[n]) for n in reached}
+        total = sum(weights.values())
+        return {n: w / total for n, w in sorted(weights.items()) if w > 0}
+
     def mixture_sf(self, admission_type: str, t: npt.ArrayLike) -> FloatArray:
         """Survival of a stay still to come of this admission type, not yet assigned to a group:
         the groups' Coxian curves mixed by the type's shares."""
