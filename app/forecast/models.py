@@ -10,6 +10,7 @@ from typing import Any
 from sqlalchemy import select
 from sqlalchemy.orm import Session
 
+from app.bounded_cache import BoundedCache
 from app.store.models import TrainedModel
 from app.timeutil import as_utc
 
@@ -48,8 +49,11 @@ def newest_model(session: Session, unit: str, not_after: datetime
     if payload is None:
         payload = json.loads(session.scalar(
             select(TrainedModel.payload).where(TrainedModel.id == model_id)))
-        _payloads[model_id] = payload
+        _payloads.put(model_id, payload)
     return model_id, as_utc(row[1]), payload
 
 
-_payloads: dict[str, dict[str, Any]] = {}
+# Parsed payloads of the models asked for lately (a server runs for months while units are
+# retrained daily: kept without a bound they would fill its memory).
+PAYLOADS_KEPT = 64
+_payloads: BoundedCache[dict[str, Any]] = BoundedCache(PAYLOADS_KEPT)

@@ -54,6 +54,7 @@ from typing import Any
 import numpy as np
 import numpy.typing as npt
 
+from app.bounded_cache import BoundedCache
 from app.stats.cancel import checkpoint
 
 FloatArray = npt.NDArray[np.float64]
@@ -120,7 +121,7 @@ def _stay_table(stay: Any, tau: FloatArray) -> tuple[FloatArray, FloatArray]:
 # (a model's group distributions serve every forecast made with it; the object is kept with
 # its values, so its id is not reused while the entry lives).
 HOURLY_KEPT = 256
-_HOURLY: dict[int, tuple[Any, FloatArray]] = {}
+_HOURLY: BoundedCache[tuple[Any, FloatArray]] = BoundedCache(HOURLY_KEPT)
 
 
 def hourly_sf(stay: Any, count: int) -> FloatArray:
@@ -136,9 +137,7 @@ def hourly_sf(stay: Any, count: int) -> FloatArray:
     size = max(count + 1, 24 * 10 + 1)      # ten days: every forecast's week fits
     values = np.asarray(stay.sf(np.arange(size) / 24.0), dtype=float)
     values.setflags(write=False)
-    _HOURLY[id(stay)] = (stay, values)
-    while len(_HOURLY) > HOURLY_KEPT:
-        _HOURLY.pop(next(iter(_HOURLY)))
+    _HOURLY.put(id(stay), (stay, values))
     return values[: count + 1]
 
 

@@ -13,6 +13,7 @@ from fastapi import APIRouter, HTTPException, Request
 from fastapi.responses import HTMLResponse, Response
 from sqlalchemy import func, select
 
+from app.bounded_cache import BoundedCache
 from app.config import current_time, get_settings
 from app.forecast import backtest_jobs
 from app.forecast.backtest_jobs import (
@@ -27,7 +28,6 @@ from app.forecast.routing import Routing
 from app.store import repo
 from app.store.models import StoredForecast
 from app.web import figures, model_track
-from app.web.bounded_cache import BoundedCache
 from app.web.deps import SessionDep
 from app.web.security import ReadActor
 from app.web.templating import templates

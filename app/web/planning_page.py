@@ -19,6 +19,7 @@ from fastapi import APIRouter, HTTPException, Request
 from fastapi.responses import HTMLResponse, Response
 
 from app import bounds
+from app.bounded_cache import BoundedCache
 from app.config import current_time, get_settings
 from app.forecast.planning_inputs import UnitDemand, unit_planning_input
 from app.forecast.planning_report import (
@@ -34,7 +35,6 @@ from app.stats.planning import WEEKDAYS
 from app.stats.planning_scenarios import Scenario
 from app.store import repo
 from app.web import figures
-from app.web.bounded_cache import BoundedCache
 from app.web.deps import SessionDep
 from app.web.security import ReadActor
 from app.web.templating import templates

@@ -14,6 +14,7 @@ import numpy as np
 import numpy.typing as npt
 import pandas as pd
 
+from app.bounded_cache import BoundedCache
 from app.forecast.los.constants import NS_PER_DAY, PAYLOAD_FORMAT, FloatArray, IntArray
 from app.forecast.los.design import Design
 from app.forecast.los.rows import Landmarks, _local_days, _localize, _ns, forecast_bounds
@@ -28,7 +29,7 @@ from app.stats.survival_tree import (
 # Models made from payloads lately, by the payload's id (the payload is kept with its model,
 # so the id cannot be reused while the entry lives).
 MADE_SIZE = 32
-_MADE: dict[int, tuple[Mapping[str, Any], LosModel]] = {}
+_MADE: BoundedCache[tuple[Mapping[str, Any], LosModel]] = BoundedCache(MADE_SIZE)
 
 
 @dataclass(frozen=True, eq=False)
@@ -62,9 +63,7 @@ class LosModel:
         if found is not None and found[0] is payload:
             return found[1]
         model = cls.from_payload(payload)
-        _MADE[id(payload)] = (payload, model)
-        while len(_MADE) > MADE_SIZE:
-            _MADE.pop(next(iter(_MADE)))
+        _MADE.put(id(payload), (payload, model))
         return model
 
     def curves(self, covariates: FloatArray, days_in: FloatArray,

@@ -1,5 +1,5 @@
-"""A small in-process cache for pages: the most recently used results by key, at most
-``size`` of them, safe to share between the server's threads."""
+"""A small in-process cache (pages, parsed models, survival tables): the most recently used
+results by key, at most ``size`` of them, safe to share between the server's threads."""
 
 from __future__ import annotations
 
