@@ -8,11 +8,11 @@ would have been made then from the same data.
 from __future__ import annotations
 
 import json
-from collections.abc import Mapping, Sequence
+from collections.abc import Sequence
 from dataclasses import dataclass, replace
 from datetime import UTC, date, datetime, time, timedelta
 from functools import cached_property, lru_cache
-from typing import Any
+from typing import TYPE_CHECKING, Any
 from zoneinfo import ZoneInfo
 
 import numpy as np
@@ -31,7 +31,7 @@ from app.forecast.los import LosModel, train_los
 from app.forecast.models import newest_model, save_model
 from app.forecast.newcomer_clock import elapsed
 from app.forecast.routing import fit_routing
-from app.forecast.stay_grid import census_offsets, on_instants, predicted_on_grid
+from app.forecast.stay_grid import census_offsets, days_after, on_instants, predicted_on_grid
 from app.state import UnitState, load_state
 from app.stats.loss import LOSS_PATHS, LossDraws, draw_losses, losses
 from app.stats.occupancy import (
@@ -49,14 +49,15 @@ from app.store import repo
 from app.store.models import StoredForecast
 from app.timeutil import census_instants_after, iso, localize
 
+if TYPE_CHECKING:
+    from app.forecast.transfers import AtHand
+
 FORMAT = 1
 DEFAULT_DAYS = 7
 # Joint paths of the week for the any-night risk where the unit has no ceiling; under a
 # ceiling the ceiling's own paths serve (app.stats.loss.LOSS_PATHS).
 WEEK_PATHS = 5000
 NS_PER_DAY = 86_400e9
-
-
 class NoModel(LookupError):
     """No trained model may be used for this instant."""
 
@@ -108,10 +109,6 @@ def model_for(session: Session, unit: str, as_of: datetime) -> ModelRecord:
     return ModelRecord(*found)
 
 
-def _days_after(instant: datetime, as_of: pd.Timestamp) -> float:
-    return (pd.Timestamp(instant) - as_of).value / NS_PER_DAY
-
-
 @lru_cache(maxsize=64)
 def _slot_offsets(tz: ZoneInfo, as_of: pd.Timestamp, first_day: date, days: int, hours: int
                   ) -> np.ndarray:
@@ -121,7 +118,7 @@ def _slot_offsets(tz: ZoneInfo, as_of: pd.Timestamp, first_day: date, days: int,
     for d in range(days):
         local_day = first_day + timedelta(days=d)
         for hour in range(hours):
-            out[d, hour] = _days_after(localize(datetime.combine(local_day, time(hour, 30)), tz),
+            out[d, hour] = days_after(localize(datetime.combine(local_day, time(hour, 30)), tz),
                                        as_of)
     out.setflags(write=False)
     return out
@@ -183,7 +180,7 @@ def _booked(state: UnitState, los: LosModel, elective: dict[str, Any], last_day:
         lead = min((planned - today).days, MAX_LEAD)
         when = localize(datetime.combine(planned, time(0)) + timedelta(hours=hour), state.tz)
         # A booking for today whose usual admission hour has passed may still come.
-        offset = max(_days_after(when, state.as_of), 1 / 24)
+        offset = max(days_after(when, state.as_of), 1 / 24)
         p_go.append(float(p_go_by_lead[lead]))
         admit_at.append(offset)
         stays.append(_booked_stay(los, row))
@@ -227,8 +224,7 @@ def forecast(session: Session, unit: str, as_of: datetime, tz: ZoneInfo, *,
 
 
 def senders_of(session: Session, state: UnitState, record: ModelRecord,
-               loaded: Mapping[str, tuple[UnitState, dict[str, Any] | None]] | None = None
-               ) -> list[Any]:
+               loaded: AtHand | None = None) -> list[Any]:
     """The units passing patients on to ``state.unit``, each with its state and model at the
     same as_of (app/forecast/transfers.py; ``loaded``: those at hand already)."""
     from app.forecast.transfers import senders_for
@@ -438,7 +434,6 @@ def forecast_on(backdrop: Backdrop, state: UnitState, record: ModelRecord
     if backdrop.losses is not None:
         lost = losses(backdrop.losses, inputs.p_grid, backdrop.limits)
     results = with_current(p_present, backdrop.newcomers, inputs.beds, backdrop.limits,
-                           draws=backdrop.losses, p_grid=inputs.p_grid,
                            passed=backdrop.passed, lost=lost)
     out_days = []
     for k, (instant, local_day, bed_count, result) in enumerate(zip(

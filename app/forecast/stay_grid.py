@@ -21,6 +21,7 @@ import numpy.typing as npt
 import pandas as pd
 
 from app.forecast.los import LosModel, StayPredictions, predict_stays
+from app.forecast.los.constants import NS_PER_DAY
 from app.state import UnitState
 from app.stats.transfer_presence import leaving_grid
 from app.timeutil import census_instants_after
@@ -30,14 +31,16 @@ from app.timeutil import census_instants_after
 STEP_DAYS = 0.125
 
 FloatArray = npt.NDArray[np.float64]
-NS_PER_DAY = 86_400e9
+
+
+def days_after(instant: datetime, as_of: pd.Timestamp) -> float:
+    """Days from ``as_of`` to ``instant`` (to the nanosecond)."""
+    return (pd.Timestamp(instant) - as_of).value / NS_PER_DAY
 
 
 def census_offsets(state: UnitState, instants: Sequence[datetime]) -> FloatArray:
     """Days from the state's as_of to each of ``instants`` (its census instants)."""
-    as_of = state.as_of
-    return np.array([(pd.Timestamp(h) - as_of).value / NS_PER_DAY for h in instants],
-                    dtype=float)
+    return np.array([days_after(h, state.as_of) for h in instants], dtype=float)
 
 
 def own_census_offsets(state: UnitState, count: int) -> FloatArray:

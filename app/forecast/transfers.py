@@ -3,10 +3,10 @@
 For each sending unit S (a unit R received patients from by its training cut-off):
 
 - S has a usable model at ``as_of`` (trained by then, with routing): its current patients are
-  asked of S's own length-of-stay model on a grid of instants (every three hours and R's
-  census instants: ``app.forecast.stay_grid``, so S's own forecast and R's share the
-  answer when their census instants agree), each one's chance of leaving S in each bin
-  times its group's routing share to R times the survival in R from the bin's midpoint
+  read off the curves S's own forecast asks its length-of-stay model for (every three hours
+  and S's census instants: ``app.forecast.stay_grid``, asked once for both), linearly in
+  time at R's census instants; each one's chance of leaving S in each bin times its group's
+  routing share to R times the survival in R from the bin's midpoint
   (:func:`app.stats.transfer_presence.passed_presence`); S's bookings and arrival streams
   (emergency, electives not yet booked) reach R through the tandem survival
   (:class:`app.stats.transfer_presence.TandemStay`), each arrival day's count still negative
@@ -48,6 +48,9 @@ from app.stats.transfer_presence import (
 )
 
 MODES = ("pass-on", "stream")
+# Units whose state and newest model payload (None: no model) at the forecast's as_of are at
+# hand already (a page or a hospital forecast computing several units), used as they are.
+AtHand = Mapping[str, tuple[UnitState, dict[str, Any] | None]]
 
 
 @dataclass(frozen=True, eq=False)
@@ -71,11 +74,9 @@ def sender_units(record_payload: dict[str, Any]) -> tuple[str, ...]:
 
 def senders_for(session: Session, unit: str, as_of: Any, tz: ZoneInfo,
                 record_payload: dict[str, Any], *, mode: str = "pass-on",
-                loaded: Mapping[str, tuple[UnitState, dict[str, Any] | None]] | None = None
-                ) -> list[Sender]:
+                loaded: AtHand | None = None) -> list[Sender]:
     """Each sending unit of ``unit`` with its state and newest model at ``as_of`` (the same
-    "as of" rule as the receiving forecast's). ``loaded``: units whose state and newest
-    model payload (None: no model) at this as_of are at hand already, used as they are."""
+    "as of" rule as the receiving forecast's), those in ``loaded`` taken as they are."""
     from app.forecast.models import newest_model
 
     if mode not in MODES:
@@ -210,7 +211,7 @@ def _sender_curves(payload: dict[str, Any], los: LosModel, state: UnitState, h: 
         u = np.union1d(own, h)
         return u, on_instants(own, predicted.p_present, u), predicted
     u, predicted = predicted_on_grid(payload, los, state, h)
-    return u, on_instants(u, predicted.p_present, u), predicted
+    return u, np.hstack([np.ones((len(predicted.stay_ids), 1)), predicted.p_present]), predicted
 
 
 def _from_sender(receiver: UnitState, sender: Sender, h: np.ndarray, g_r: Any,

@@ -73,9 +73,9 @@ def forecast_moment(now: datetime, written_at: datetime | None) -> datetime:
     return moment
 
 
-# Units whose state and model (payload; None: no model) a page has at hand for this as_of:
-# a unit computed after its sending units takes their states as they are, so their patients
-# are asked of their models once (app/forecast/hospital.py, app/forecast/stay_grid.py).
+# A page showing several units fills one of these as it computes them: a unit computed after
+# its sending units takes their states as they are, so their patients are asked of their
+# models once (app/forecast/transfers.AtHand, app/forecast/stay_grid.py).
 AtHand = dict[str, tuple[UnitState, dict[str, Any] | None]]
 
 
