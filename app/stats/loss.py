@@ -41,8 +41,9 @@ current patients' departures as a Markov process of the count alone (they are in
 each has its own hazard, so the count is not Markov) and the newcomers' phase-type stays as a
 single hazard; both are approximations whose error does not vanish with more work, while the
 simulation here is exact up to its Monte-Carlo error and the hourly slots the exact forecast
-already uses. The paths that never reach the ceiling cost one vectorised pass; only those that
-do are followed instant by instant.
+already uses. The paths that never reach the ceiling cost one pass; only those that do are
+followed arrival by arrival. The random draws are NumPy's; the loops over paths and arrivals
+are compiled (app/stats/loss_kernels.py).
 """
 
 from __future__ import annotations
@@ -55,6 +56,7 @@ import numpy as np
 import numpy.typing as npt
 
 from app.bounded_cache import BoundedCache
+from app.stats import loss_kernels as kernels
 from app.stats.cancel import checkpoint
 
 FloatArray = npt.NDArray[np.float64]
@@ -88,20 +90,24 @@ def loss_grid(booked: Any, streams: Sequence[Any], census_at: npt.ArrayLike) -> 
 class LossDraws:
     """Everything random in the paths except the current stays' uniforms.
 
-    Arrivals (all streams and paths together) are sorted by (grid index, path); ``rank`` is an
-    arrival's place among its path's arrivals in the same slot; ``leave`` is the first grid
-    index at which it would be gone (``grid.size`` if still in at the end)."""
+    Arrivals (all streams and paths together) are grouped by path, path by path (path q's are
+    ``starts[q]:starts[q + 1]``), in time order within a path; ``rank`` is an arrival's place
+    among its path's arrivals in the same slot; ``leave`` is the first grid index at which it
+    would be gone (``grid.size`` if still in at the end). Bookings that go ahead likewise
+    (``booking_starts``), each in from grid index ``booking_in`` to ``booking_out``."""
 
     grid: FloatArray
     census_index: IntArray
     n_paths: int
     seed: int
+    starts: IntArray
     at: IntArray
-    path: IntArray
     leave: IntArray
     stream: IntArray
     rank: IntArray
-    booked_in: npt.NDArray[np.int32]          # (grid, paths) bookings in at each instant
+    booking_starts: IntArray
+    booking_in: IntArray
+    booking_out: IntArray
     stream_names: tuple[str, ...]
     # One uniform per path, to break ties when the paths are reordered to exact marginals
     # (app.stats.occupancy_paths.with_exact_marginals).
@@ -141,37 +147,6 @@ def hourly_sf(stay: Any, count: int) -> FloatArray:
     return values[: count + 1]
 
 
-def _search_left(values: FloatArray, queries: FloatArray) -> IntArray:
-    """``np.searchsorted(values, queries, side="left")`` for non-decreasing ``values``, the
-    same indices found through a table of equal-width buckets (a binary search of 57,000
-    random queries among 200 values took 2.3 ms, most of a unit's draw; this about 0.6 ms).
-
-    A query in bucket b is answered by the first value at or above the bucket's lower edge,
-    stepped on past the bucket's values below the query (with eight buckets per value, at
-    most one step for nearly every query) and back over any value at or above the query that
-    rounding put below the edge."""
-    n = values.size
-    buckets = 8 * n
-    if n < 2 or queries.size < buckets or not values[-1] > values[0]:
-        return np.searchsorted(values, queries, side="left")
-    low, width = float(values[0]), float(values[-1] - values[0]) / buckets
-    first = np.searchsorted(values, low + width * np.arange(buckets + 2), side="left")
-    bucket = np.clip((queries - low) / width, 0.0, float(buckets)).astype(np.int64)
-    j = first[bucket]
-    end = first[bucket + 1]
-    active = np.flatnonzero(j < end)
-    while active.size:                 # values in the query's bucket below it: step on
-        step = values[j[active]] < queries[active]
-        active = active[step]
-        j[active] += 1
-        active = active[j[active] < end[active]]
-    back = np.flatnonzero((j > 0) & (values[np.maximum(j - 1, 0)] >= queries))
-    while back.size:                   # rounding put the edge above the query: step back
-        j[back] -= 1
-        back = back[(j[back] > 0) & (values[np.maximum(j[back] - 1, 0)] >= queries[back])]
-    return j
-
-
 def _leave_index(table: tuple[FloatArray, FloatArray], tau: FloatArray, start: IntArray,
                  u: FloatArray) -> IntArray:
     """First grid index at which a stay begun at grid instant ``start`` with survival draw
@@ -180,16 +155,11 @@ def _leave_index(table: tuple[FloatArray, FloatArray], tau: FloatArray, start: I
     A stay of length L = S^-1(u) (u uniform, so L has survival S) is in at a later instant
     while S(time since start) > u, that is while the time since start is below L: the first
     grid instant at least L after the start is the one at which it is gone
-    (inverse-transform sampling on the grid; L read off the interpolated table)."""
+    (inverse-transform sampling on the grid; L read off the table, linear between its hourly
+    knots; compiled: app/stats/loss_kernels.py)."""
     knots, s = table
-    j = _search_left(-s, -u)                           # first knot with S <= u
-    inside = np.clip(j, 1, max(s.size - 1, 1))
-    s_lo, s_hi = s[inside - 1], s[inside]
-    frac = np.where(s_lo > s_hi, (s_lo - u) / np.where(s_lo > s_hi, s_lo - s_hi, 1.0), 1.0)
-    length = knots[inside - 1] + np.clip(frac, 0.0, 1.0) * (knots[inside] - knots[inside - 1])
-    length = np.where(j == 0, 0.0, np.where(j >= s.size, np.inf, length))
-    leave = _search_left(tau, tau[start] + length)
-    return np.minimum(np.maximum(leave, start + 1), tau.size).astype(np.int64)
+    return np.asarray(kernels.leave_index(knots, s, tau, np.asarray(start, dtype=np.int64),
+                                          np.asarray(u, dtype=float)))
 
 
 def draw_losses(booked: Any, streams: Sequence[Any], census_at: npt.ArrayLike, n_paths: int,
@@ -207,28 +177,27 @@ def draw_losses(booked: Any, streams: Sequence[Any], census_at: npt.ArrayLike, n
            else np.asarray(clock(grid), dtype=float))
     size = grid.size
     census_index = np.searchsorted(grid, h).astype(np.int64)
-    # Bookings: +1 from admission, -1 from the first instant the stay is over. Bookings of
-    # one patient group share a distribution (its survival between grid instants, once).
-    change = np.zeros((size + 1, n_paths), dtype=np.int32)
+    # Bookings that go ahead: in from admission to the first instant the stay is over.
+    # Bookings of one patient group share a distribution (its survival table, once).
     admit_at = np.asarray(booked.admit_at, dtype=float)
     inside = np.flatnonzero(admit_at <= (grid[-1] if size else -np.inf))
     goes = rng.random((len(booked.p_go), n_paths)) < np.asarray(booked.p_go)[:, None]
     by_stay: dict[int, list[int]] = {}
     for j in inside:
         by_stay.setdefault(id(booked.stays[j]), []).append(int(j))
-    columns = np.arange(n_paths)
+    b_path: list[IntArray] = []
+    b_in: list[IntArray] = []
+    b_out: list[IntArray] = []
     for rows in by_stay.values():
         table = _stay_table(booked.stays[rows[0]], tau)
         admitted_at = np.searchsorted(grid, admit_at[rows]).astype(np.int64)
-        went = goes[rows]                                   # (bookings of the group, paths)
-        booking, on_path = np.nonzero(went)
-        gone = _leave_index(table, tau, admitted_at[booking], rng.random(booking.size))
-        np.add.at(change, admitted_at, went.astype(np.int32))
-        change -= np.bincount(gone * n_paths + columns[on_path],
-                              minlength=(size + 1) * n_paths).reshape(size + 1, n_paths
-                                                                      ).astype(np.int32)
-    booked_in = (np.cumsum(change, axis=0, dtype=np.int32)[:size] if len(booked.p_go)
-                 else np.zeros((size, n_paths), dtype=np.int32))
+        booking, on_path = np.nonzero(goes[rows])           # (bookings of the group, paths)
+        b_path.append(on_path)
+        b_in.append(admitted_at[booking])
+        b_out.append(_leave_index(table, tau, admitted_at[booking], rng.random(booking.size)))
+    booking_path = _joined(b_path)
+    by_path = np.argsort(booking_path, kind="stable")
+    booking_starts = np.searchsorted(booking_path[by_path], np.arange(n_paths + 1))
     at: list[IntArray] = []
     path: list[IntArray] = []
     leave: list[IntArray] = []
@@ -244,27 +213,20 @@ def draw_losses(booked: Any, streams: Sequence[Any], census_at: npt.ArrayLike, n
         leave.append(_leave_index(_stay_table(stream.stay, tau), tau, start,
                                   rng.random(start.size)))
         which.append(np.full(start.size, s, dtype=np.int64))
-    if at:
-        a_at, a_path = np.concatenate(at), np.concatenate(path)
-        a_leave, a_stream = np.concatenate(leave), np.concatenate(which)
-    else:
-        a_at = a_path = a_leave = a_stream = np.zeros(0, dtype=np.int64)
-    # Sorted by (instant, path): two stable passes on small integers (NumPy's stable sort is
-    # a radix sort for 16-bit integers, about twenty times faster here than on 32-bit ones).
-    order = np.argsort(_small(a_path), kind="stable")
-    order = order[np.argsort(_small(a_at[order]), kind="stable")]
-    a_at, a_path, a_leave, a_stream = a_at[order], a_path[order], a_leave[order], a_stream[order]
-    key = a_at * n_paths + a_path
-    first = np.r_[0, np.flatnonzero(np.diff(key)) + 1] if key.size else np.zeros(0, dtype=int)
-    rank = np.arange(key.size) - np.repeat(first, np.diff(np.r_[first, key.size]))
-    return LossDraws(grid, census_index, n_paths, seed, a_at, a_path, a_leave, a_stream,
-                     rank.astype(np.int64), booked_in, tuple(s.name for s in streams),
+    a_at, a_path = _joined(at), _joined(path)
+    # Path by path and in time order, stably (a counting sort), with each arrival's rank among
+    # its path's arrivals at the same instant.
+    order, rank, starts = kernels.path_order(a_path, a_at, n_paths, size)
+    return LossDraws(grid, census_index, n_paths, seed, starts, a_at[order],
+                     _joined(leave)[order], _joined(which)[order], rank,
+                     booking_starts.astype(np.int64), _joined(b_in)[by_path],
+                     _joined(b_out)[by_path], tuple(s.name for s in streams),
                      rng.random(n_paths))
 
 
-def _small(values: IntArray) -> npt.NDArray[np.integer[Any]]:
-    """Non-negative integers as 16-bit ones where they fit (for the radix sort)."""
-    return values.astype(np.uint16 if values.size == 0 or values.max() < 2**16 else np.int64)
+def _joined(parts: list[IntArray]) -> IntArray:
+    return (np.concatenate(parts).astype(np.int64, copy=False) if parts
+            else np.zeros(0, dtype=np.int64))
 
 
 def _grid_clock(booked: Any, streams: Sequence[Any], census_at: FloatArray, grid: FloatArray
@@ -334,17 +296,15 @@ def _arrivals(stream: Any, last: float, n_paths: int, rng: np.random.Generator
     total = int(n.sum())
     if total == 0:
         return None
-    on_path = np.repeat(np.repeat(np.arange(n_paths), days.size), n.ravel())
-    on_day = np.repeat(np.tile(np.arange(days.size), n_paths), n.ravel())
     cumulative = np.cumsum(mean)
     before = np.r_[0.0, np.cumsum(day_mean)][:-1]
-    # side="right": the first slot whose cumulative mean exceeds the draw (one past the
-    # last that does not), through the bucket table.
-    draw = before[on_day] + rng.random(total) * day_mean[on_day]
-    slot = _search_left(cumulative, np.nextafter(draw, np.inf))
     first = np.searchsorted(day_of, np.arange(days.size))
     last_slot = np.r_[first[1:], day_of.size] - 1
-    slot = np.clip(slot, first[on_day], last_slot[on_day])
+    # Path by path and day by day, each arrival in the first of its day's slots whose
+    # cumulative mean exceeds its draw (compiled: app/stats/loss_kernels.py).
+    slot, on_path = kernels.arrival_slots(n.astype(np.int64), rng.random(total), before,
+                                          day_mean, cumulative, first.astype(np.int64),
+                                          last_slot.astype(np.int64))
     return slot_at, slot, on_path
 
 
@@ -371,83 +331,26 @@ def _grid_limits(draws: LossDraws, limits: Sequence[int | None]) -> FloatArray:
     return per_census[np.minimum(nxt, per_census.size - 1)]
 
 
-def _counts(up: IntArray, down: IntArray, size: int, n_paths: int) -> npt.NDArray[np.int32]:
-    """(size, paths) running count of +1 at flat indices ``up`` and -1 at ``down`` (flat
-    index: grid index * n_paths + path)."""
-    cells = (size + 1) * n_paths
-    flat = np.bincount(up, minlength=cells).astype(np.int32)
-    if down.size:
-        flat -= np.bincount(down, minlength=cells).astype(np.int32)
-    return np.cumsum(flat.reshape(size + 1, n_paths), axis=0, dtype=np.int32)[:size]
-
-
 def losses(draws: LossDraws, p_grid: npt.ArrayLike, limits: Sequence[int | None]) -> Losses:
     """Follow every path with arrivals turned away at ``limits`` (one per census instant);
     ``p_grid`` (stays, grid) is each current stay's probability of being in at each grid
-    instant."""
+    instant.
+
+    A current stay keeps one uniform U for the week and is in at grid instant t while
+    U < p(t); arrivals are admitted in time order while the count at their instant is below
+    the ceiling; only the paths on which some arrival would find the unit full even with
+    everyone admitted are followed arrival by arrival (compiled:
+    app/stats/loss_kernels.py)."""
     size, n = draws.grid.size, draws.n_paths
     p = np.asarray(p_grid, dtype=float).reshape(-1, size)
     p = np.minimum.accumulate(p, axis=1)          # in at t only if in before
     uniform = np.random.default_rng([draws.seed, p.shape[0]]).random((p.shape[0], n))
-    # A stay is in at grid instants 0 .. gone-1 (U < p(t)). Row i's values 2i - p lie in
-    # [2i - 1, 2i] and increase along the row: laid end to end, one search answers all.
-    rows = 2.0 * np.arange(p.shape[0])[:, None]
-    gone = (np.searchsorted((rows - p).ravel(), (rows - uniform).ravel(), side="left")
-            .reshape(p.shape[0], n) - np.arange(p.shape[0])[:, None] * size)
-    cols = np.arange(n)
-    current = p.shape[0] - _counts((gone * n + cols[None, :]).ravel(),
-                                   np.zeros(0, dtype=np.int64), size, n)
-    fixed = current + draws.booked_in
-    # Arrivals with nobody turned away: in from the instant after arrival until they leave.
-    free_in = _counts((draws.at + 1) * n + draws.path, draws.leave * n + draws.path, size, n)
-    ceiling = _grid_limits(draws, limits)
-    # Paths on which some arrival would find the unit full even with everyone admitted.
-    seen = fixed[draws.at, draws.path] + free_in[draws.at, draws.path] + draws.rank
-    touching = np.flatnonzero(np.bincount(draws.path[seen >= ceiling[draws.at]],
-                                          minlength=n))
-    admitted = np.ones(draws.at.size, dtype=bool)
-    if touching.size:
-        _follow(draws, fixed, ceiling, touching, admitted)
-    k_idx = draws.census_index
-    free = (fixed + free_in)[k_idx]
-    n_streams = len(draws.stream_names)
-    lost = np.zeros((k_idx.size, n, n_streams), dtype=np.int64)
-    away = np.flatnonzero(~admitted)
-    for k, g in enumerate(k_idx):
-        still = away[(draws.at[away] < g) & (draws.leave[away] > g)]
-        if still.size:
-            np.add.at(lost[k], (draws.path[still], draws.stream[still]), 1)
+    checkpoint()
+    free, lost = kernels.follow_paths(
+        np.ascontiguousarray(p), uniform, draws.booking_starts, draws.booking_in,
+        draws.booking_out, draws.starts, draws.at, draws.leave, draws.stream, draws.rank,
+        _grid_limits(draws, limits), draws.census_index, len(draws.stream_names))
     return Losses(free, lost, draws.stream_names)
-
-
-def _follow(draws: LossDraws, fixed: npt.NDArray[np.int64], ceiling: FloatArray,
-            touching: IntArray, admitted: npt.NDArray[np.bool_]) -> None:
-    """Admit the arrivals of the ``touching`` paths in time order while there is room; mark
-    the others in ``admitted`` (in place)."""
-    n_t = touching.size
-    position = np.full(draws.n_paths, -1, dtype=np.int64)
-    position[touching] = np.arange(n_t)
-    mine = np.flatnonzero(position[draws.path] >= 0)
-    at, pos = draws.at[mine], position[draws.path[mine]]
-    rank, leave = draws.rank[mine], draws.leave[mine]
-    bounds = np.searchsorted(at, np.arange(draws.grid.size + 1))
-    inside = np.zeros(n_t, dtype=np.int64)          # admitted arrivals in, per touching path
-    leaving = np.zeros((draws.grid.size + 1, n_t), dtype=np.int64)
-    fixed_t = fixed[:, touching]
-    for g in range(draws.grid.size):
-        if g % 24 == 0:
-            checkpoint()
-        inside -= leaving[g]
-        lo, hi = bounds[g], bounds[g + 1]
-        if lo == hi:
-            continue
-        who = pos[lo:hi]
-        room = ceiling[g] - fixed_t[g, who] - inside[who]
-        ok = rank[lo:hi] < room
-        if not ok.all():
-            admitted[mine[lo:hi][~ok]] = False
-        inside += np.bincount(who[ok], minlength=n_t)
-        np.add.at(leaving, (leave[lo:hi][ok], who[ok]), 1)
 
 
 def corrected_pmf(exact: npt.NDArray[np.float64], free: npt.NDArray[np.int64],
