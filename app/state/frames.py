@@ -108,10 +108,11 @@ class UnitState:
         """Which rows of ``stays`` are in the unit at ``instant`` (must not be after as_of)."""
         if instant > self.as_of:
             raise ValueError(f"instant {instant} is after as_of {self.as_of}: unknown then")
-        admitted = self.stays["admitted_at"] <= instant
+        at = instant.value
+        admitted = self.stays["admitted_at"].array.asi8 <= at
         discharged = self.stays["discharged_at"]
-        still_in = discharged.isna() | (discharged > instant)
-        return (admitted & still_in).to_numpy()
+        still_in = discharged.isna().to_numpy() | (discharged.array.asi8 > at)
+        return admitted & still_in
 
     def occupancy_at(self, instant: pd.Timestamp) -> int:
         """Stays in the unit at a past instant (the census count it implies)."""
@@ -136,11 +137,13 @@ class UnitState:
         (change since the previous observation, NaN when there is none) and ``n_hours``
         (hours since it was observed) are added.
         """
-        current = self.stays.loc[self.present_mask(self.as_of)].copy()
-        current["days_in"] = (self.as_of - current["admitted_at"]).dt.total_seconds() / 86400.0
+        rows = np.flatnonzero(self.present_mask(self.as_of))
+        columns = {name: self.stays[name].array.take(rows) for name in self.stays.columns}
+        columns["days_in"] = (self.as_of.value - columns["admitted_at"].asi8) / 8.64e13
         latest = latest_observations(self.observations, self.as_of,
-                                     stay_ids=current["stay_id"])
-        return _widen(current, latest, self.as_of).reset_index(drop=True)
+                                     stay_ids=pd.Series(columns["stay_id"]))
+        columns.update(_widened(columns["stay_id"], latest, self.as_of))
+        return pd.DataFrame(columns)
 
     def open_bookings(self) -> pd.DataFrame:
         """Bookings not cancelled by as_of, not yet admitted, planned for today or later
@@ -197,11 +200,12 @@ def latest_observations(observations: pd.DataFrame, at: pd.Timestamp,
         "value": value[last], "previous": previous[last]})
 
 
-def _widen(stays: pd.DataFrame, latest: pd.DataFrame, at: pd.Timestamp) -> pd.DataFrame:
-    """One column triple per observation name (value, change, hours), aligned to the stays."""
+def _widened(stay_ids: Any, latest: pd.DataFrame, at: pd.Timestamp) -> dict[str, np.ndarray]:
+    """One column triple per observation name (value, change, hours), aligned to
+    ``stay_ids``."""
     if latest.empty:
-        return stays
-    row = pd.Index(stays["stay_id"]).get_indexer(latest["stay_id"])
+        return {}
+    row = pd.Index(stay_ids).get_indexer(latest["stay_id"])
     hours = (at.value - latest["observed_at"].array.asi8) / 3.6e12
     value = latest["value"].to_numpy(dtype=float)
     change = value - latest["previous"].to_numpy(dtype=float)
@@ -210,7 +214,7 @@ def _widen(stays: pd.DataFrame, latest: pd.DataFrame, at: pd.Timestamp) -> pd.Da
     for name in sorted(set(names)):
         found = (names == name) & (row >= 0)
         for suffix, source in (("", value), ("_change", change), ("_hours", hours)):
-            column = np.full(len(stays), np.nan)
+            column = np.full(len(stay_ids), np.nan)
             column[row[found]] = source[found]
             columns[f"{name}{suffix}"] = column
-    return pd.concat([stays, pd.DataFrame(columns, index=stays.index)], axis=1)
+    return columns

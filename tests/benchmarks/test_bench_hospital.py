@@ -25,6 +25,7 @@ import numpy as np
 
 from app.forecast import service
 from app.forecast.hospital import LoadedUnit, forecast_units, load_units
+from app.forecast.los import rows
 from app.forecast.service import train_model
 from app.ingest import import_file
 from app.store import db
@@ -89,6 +90,7 @@ def test_whole_hospital_forecast_speed(db_url: str, tmp_path: Path) -> None:
     loads, times = [], []
     for _ in range(3):
         service._slot_offsets.cache_clear()     # nothing kept from the run before
+        rows._day_axis.cache_clear()
         with db.session_scope(db_url) as session:
             start = time.perf_counter()
             loaded: dict[str, LoadedUnit] = load_units(session, UNITS, NOW, UTC_ZONE)

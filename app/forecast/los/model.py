@@ -101,7 +101,8 @@ class _Curves:
     def survival(self, query_ns: IntArray) -> FloatArray:
         """P(still in at each query instant), shape (n, Q); ``query_ns`` shape (n, Q)."""
         q = np.asarray(query_ns, dtype=np.int64)
-        local = _local_days(q.ravel(), self.tz).reshape(q.shape)
+        instants, where = np.unique(q, return_inverse=True)   # rows mostly share instants
+        local = _local_days(instants, self.tz)[where].reshape(q.shape)
         h = cumulative_hazard_at(self.model.hazard.profile, self.rates, self.bounds_local,
                                  self.days_in, local)
         return np.exp(-h)

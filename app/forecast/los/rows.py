@@ -5,6 +5,7 @@ from __future__ import annotations
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, replace
 from datetime import date, time, timedelta
+from functools import lru_cache
 from typing import Any
 from zoneinfo import ZoneInfo
 
@@ -59,14 +60,20 @@ class _DayAxis:
     census_local: FloatArray
 
 
+@lru_cache(maxsize=64)
 def _day_axis(first: date, last: date, landmark_clock: time, census_time: time,
               tz: ZoneInfo) -> _DayAxis:
+    """The calendar from ``first`` to ``last`` (kept for the last few spans asked: every
+    current stay of every unit forecast at one as_of shares one span; read only)."""
     days = pd.date_range(first, last, freq="D")
     landmark = _localize(days + pd.Timedelta(hours=landmark_clock.hour,
                                              minutes=landmark_clock.minute), tz)
     census = _localize(days + pd.Timedelta(hours=census_time.hour,
                                            minutes=census_time.minute), tz)
-    return _DayAxis(landmark, _local_days(landmark, tz), census, _local_days(census, tz))
+    arrays = (landmark, _local_days(landmark, tz), census, _local_days(census, tz))
+    for array in arrays:
+        array.setflags(write=False)
+    return _DayAxis(*arrays)
 
 
 def _axis_for(first_ns: int, last_ns: int, extra_days: int, landmark_clock: time,
