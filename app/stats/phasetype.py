@@ -70,12 +70,12 @@ import numpy.typing as npt
 from scipy import linalg, optimize
 from threadpoolctl import ThreadpoolController
 
+from app.stats import phasetype_kernel as kernel
+
 __all__ = ["Coxian", "PhaseType", "distribution_from_dict"]
 
 FloatArray = npt.NDArray[np.float64]
 IntArray = npt.NDArray[np.int64]
-
-_TAYLOR_TERMS = 20
 
 
 # ---------------------------------------------------------------------------------------------
@@ -101,60 +101,25 @@ def _single_threaded_blas() -> Any:
 def _propagate(
     alpha: FloatArray, sub_generator: FloatArray, x: FloatArray
 ) -> tuple[FloatArray, FloatArray]:
-    """Return ``alpha exp(T x_i)`` on one BLAS thread; see :func:`_propagate_core`."""
-    with _single_threaded_blas():
-        return _propagate_core(alpha, sub_generator, x)
-
-
-def _propagate_core(
-    alpha: FloatArray, sub_generator: FloatArray, x: FloatArray
-) -> tuple[FloatArray, FloatArray]:
-    """Return ``alpha exp(T x_i)`` for each x_i as ``direction_i * exp(log_scale_i)``.
+    """Return ``alpha exp(T x_i)`` for each x_i as ``direction_i * exp(log_scale_i)`` (the
+    module's numerics, compiled: app/stats/phasetype_kernel.py).
 
     ``x`` must be 1-D, finite and >= 0. Rows of ``direction`` sum to 1 (or are all zero when the
     state underflowed relative to the largest entry of a matrix power).
     """
-    n = x.size
+    if x.size == 0:
+        return np.zeros((0, alpha.size)), np.zeros(0)
     norm = float(np.abs(sub_generator).sum(axis=1).max())
     step = 1.0 / norm
-    k_float = np.floor(x / step)
-    if n and k_float.max() > 2.0**62:
+    if float(x.max()) / step > 2.0**62:
         raise ValueError(
             f"x: {x.max()!r} is too large relative to the phase rates (more than 2^62 steps)"
         )
-    k = k_float.astype(np.int64)
-    delta = np.clip(x - k * step, 0.0, step)
-
-    direction = np.tile(alpha, (n, 1))
-    log_scale = np.zeros(n)
-    power = np.clip(linalg.expm(sub_generator * step), 0.0, None)
-    power_log = 0.0
-    remaining = k.copy()
-    with np.errstate(divide="ignore"):
-        while True:
-            selected = (remaining & 1).astype(bool)
-            if selected.any():
-                rows = direction[selected] @ power
-                totals = rows.sum(axis=1)
-                positive = totals > 0
-                rows[positive] /= totals[positive, None]
-                direction[selected] = rows
-                log_scale[selected] += power_log + np.log(totals)
-            remaining >>= 1
-            if not remaining.any():
-                break
-            power = power @ power
-            power_log *= 2.0
-            biggest = float(power.max())
-            power /= biggest
-            power_log += math.log(biggest)
-
-    term = direction.copy()
-    result = direction.copy()
-    for j in range(1, _TAYLOR_TERMS + 1):
-        term = (term @ sub_generator) * (delta / j)[:, None]
-        result += term
-    return np.clip(result, 0.0, None), log_scale
+    with _single_threaded_blas():       # a threaded BLAS wakes threads for a 10 x 10 product
+        power = np.clip(linalg.expm(sub_generator * step), 0.0, None)
+    return kernel.propagate(np.ascontiguousarray(alpha, dtype=float),
+                            np.ascontiguousarray(sub_generator, dtype=float),
+                            np.ascontiguousarray(x, dtype=float), step, power)
 
 
 def _as_rng(rng: np.random.Generator | int | None) -> np.random.Generator:
@@ -201,7 +166,7 @@ class _PhaseTypeMethods:
             )
             weights = np.ones_like(exit_rates) if kind == "sf" else exit_rates
             with np.errstate(divide="ignore"):
-                out[usable] = np.log(direction @ weights) + log_scale
+                out[usable] = np.log((direction * weights).sum(axis=1)) + log_scale
         below = flat < 0
         out[below] = 0.0 if kind == "sf" else -np.inf
         out[np.isposinf(flat)] = -np.inf
