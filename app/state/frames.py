@@ -154,12 +154,15 @@ class UnitState:
         return found
 
     def _open_bookings(self) -> pd.DataFrame:
+        b = self.bookings
+        if b.empty:
+            return b
         today = self.as_of.tz_convert(self.tz).date()
         admitted = set(self.stays["booking_id"].dropna())
-        b = self.bookings
-        keep = (b["cancelled_at"].isna() & (b["planned_date"] >= today)
-                & ~b["booking_id"].isin(admitted))
-        return b.loc[keep].reset_index(drop=True)
+        keep = (b["cancelled_at"].isna().to_numpy()
+                & (b["planned_date"].to_numpy() >= today)
+                & ~b["booking_id"].isin(admitted).to_numpy())
+        return b.take(np.flatnonzero(keep)).reset_index(drop=True)
 
 
 def latest_observations(observations: pd.DataFrame, at: pd.Timestamp,
@@ -172,7 +175,8 @@ def latest_observations(observations: pd.DataFrame, at: pd.Timestamp,
     A page recomputes this after every score, so it works on plain arrays.
     """
     obs = observations
-    keep = ((obs["observed_at"] <= at) & (obs["recorded_at"] <= at)).to_numpy()
+    at_ns = pd.Timestamp(at).value
+    keep = (obs["observed_at"].array.asi8 <= at_ns) & (obs["recorded_at"].array.asi8 <= at_ns)
     if stay_ids is not None:
         keep &= obs["stay_id"].isin(stay_ids).to_numpy()
     if not keep.any():

@@ -87,9 +87,11 @@ def _as_pmf(pmf: npt.ArrayLike, name: str = "pmf") -> FloatArray:
     values = np.asarray(pmf, dtype=float)
     if values.ndim != 1 or values.size == 0:
         raise ValueError(f"{name}: must be a non-empty 1-D array, got shape {values.shape}")
-    if not np.all(np.isfinite(values)) or np.any(values < 0):
-        raise ValueError(f"{name}: probabilities must be finite and >= 0")
+    # Two reductions (a forecast checks about a hundred pmfs per unit): the least value is
+    # NaN or negative, or the sum infinite, exactly when a value is not finite and >= 0.
     total = float(values.sum())
+    if not values.min() >= 0 or not math.isfinite(total):
+        raise ValueError(f"{name}: probabilities must be finite and >= 0")
     if abs(total - 1.0) > 1e-6:
         raise ValueError(f"{name}: must sum to 1, sums to {total!r}")
     return values

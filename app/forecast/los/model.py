@@ -17,12 +17,13 @@ import pandas as pd
 from app.bounded_cache import BoundedCache
 from app.forecast.los.constants import NS_PER_DAY, PAYLOAD_FORMAT, FloatArray, IntArray
 from app.forecast.los.design import Design
-from app.forecast.los.rows import Landmarks, _local_days, _localize, _ns, forecast_bounds
+from app.forecast.los.rows import Landmarks, _local_days, _localize, forecast_bounds
 from app.state.frames import UnitState
 from app.stats.stay_groups import StayGroups
 from app.stats.survival_tree import (
     HazardTreeModel,
     cumulative_hazard_at,
+    interval_exposure,
     time_of_cumulative_hazard,
 )
 
@@ -104,8 +105,13 @@ class _Curves:
         instants, where = np.unique(q, return_inverse=True)   # rows mostly share instants
         local = _local_days(instants, self.tz)[where].reshape(q.shape)
         h = cumulative_hazard_at(self.model.hazard.profile, self.rates, self.bounds_local,
-                                 self.days_in, local)
+                                 self.days_in, local, exposure=self._exposure)
         return np.exp(-h)
+
+    @cached_property
+    def _exposure(self) -> FloatArray:
+        """Typical days of exposure in each interval (the same whatever the rates)."""
+        return interval_exposure(self.model.hazard.profile, self.bounds_local, self.days_in)
 
     @cached_property
     def group(self) -> IntArray:
@@ -115,7 +121,8 @@ class _Curves:
     def _end(self) -> tuple[FloatArray, FloatArray]:
         """P(in at the last bound) and the days in the unit by then."""
         end_h = cumulative_hazard_at(self.model.hazard.profile, self.rates, self.bounds_local,
-                                     self.days_in, self.bounds_local[:, -1:])[:, 0]
+                                     self.days_in, self.bounds_local[:, -1:],
+                                     exposure=self._exposure)[:, 0]
         days_at_end = self.days_in + (self.bounds_ns[:, -1] - self.bounds_ns[:, 0]) / NS_PER_DAY
         return np.exp(-end_h), days_at_end
 
@@ -154,7 +161,8 @@ class _Curves:
         """Median remaining stay in days from the first bound; NaN beyond ``limit_days``
         (time so far plus remaining)."""
         t_local = time_of_cumulative_hazard(self.model.hazard.profile, self.rates,
-                                            self.bounds_local, self.days_in, math.log(2.0))
+                                            self.bounds_local, self.days_in, math.log(2.0),
+                                            exposure=self._exposure)
         out = np.full(t_local.size, np.nan)
         found = ~np.isnan(t_local)
         if found.any():
@@ -230,8 +238,8 @@ def predict_stays(model: LosModel | Mapping[str, Any], state: UnitState,
     los = _as_model(model)
     if list(instants) != sorted(instants):
         raise ValueError("instants: must be increasing")
-    as_of_ns = int(_ns([state.as_of])[0])
-    query = _ns(list(instants)) if instants else np.zeros(0, dtype=np.int64)
+    as_of_ns = int(state.as_of.value)
+    query = np.array([pd.Timestamp(t).value for t in instants], dtype=np.int64)
     if query.size and query.min() < as_of_ns:
         raise ValueError("instants: must not be before as_of")
     current = state.current_stays()

@@ -45,6 +45,7 @@ from __future__ import annotations
 from app.stats.survival_tree.profile import (
     DischargeProfile,
     cumulative_hazard_at,
+    interval_exposure,
     time_of_cumulative_hazard,
 )
 from app.stats.survival_tree.rules import FeatureSpec, TreeRules, order_categories
@@ -61,6 +62,7 @@ __all__ = [
     "PiecewiseHazardTree",
     "TreeRules",
     "cumulative_hazard_at",
+    "interval_exposure",
     "order_categories",
     "piecewise_log_likelihood",
     "time_of_cumulative_hazard",

@@ -204,8 +204,12 @@ def _hourly_profile(start: FloatArray, stop: FloatArray, event: npt.NDArray[np.b
     return rate / rate.mean()
 
 
-def _interval_exposure(profile: DischargeProfile, bounds: FloatArray,
-                       days_in: FloatArray) -> FloatArray:
+def interval_exposure(profile: DischargeProfile, bounds: npt.ArrayLike,
+                      days_in: npt.ArrayLike) -> FloatArray:
+    """Typical days of exposure in each interval (bounds[:, k], bounds[:, k + 1]], shape
+    (n, K): what the cumulative hazard multiplies by each interval's rate."""
+    bounds = np.asarray(bounds, dtype=float)
+    days_in = np.asarray(days_in, dtype=float)
     n, k1 = bounds.shape
     starts = bounds[:, :-1].ravel()
     stops = bounds[:, 1:].ravel()
@@ -214,7 +218,8 @@ def _interval_exposure(profile: DischargeProfile, bounds: FloatArray,
 
 
 def cumulative_hazard_at(profile: DischargeProfile, rates: npt.ArrayLike, bounds: npt.ArrayLike,
-                         days_in: npt.ArrayLike, query: npt.ArrayLike) -> FloatArray:
+                         days_in: npt.ArrayLike, query: npt.ArrayLike, *,
+                         exposure: FloatArray | None = None) -> FloatArray:
     """Cumulative hazard at query instants along consecutive intervals with their own rates.
 
     Parameters
@@ -228,6 +233,8 @@ def cumulative_hazard_at(profile: DischargeProfile, rates: npt.ArrayLike, bounds
         Days since admission at the landmark.
     query : array_like, shape (n, Q)
         Local-day instants at or after the landmark. Beyond the last bound the last rate goes on.
+    exposure : numpy.ndarray, shape (n, K), optional
+        :func:`interval_exposure` of these bounds, when already at hand.
 
     Returns
     -------
@@ -242,8 +249,8 @@ def cumulative_hazard_at(profile: DischargeProfile, rates: npt.ArrayLike, bounds
     if b.shape != (n, k + 1) or q.ndim != 2 or q.shape[0] != n or d.shape != (n,):
         raise ValueError(f"bounds, days_in, query: shapes {b.shape}, {d.shape}, {q.shape} "
                          f"do not fit rates {r.shape}")
-    h_bounds = np.concatenate(
-        [np.zeros((n, 1)), np.cumsum(r * _interval_exposure(profile, b, d), axis=1)], axis=1)
+    e = interval_exposure(profile, b, d) if exposure is None else exposure
+    h_bounds = np.concatenate([np.zeros((n, 1)), np.cumsum(r * e, axis=1)], axis=1)
     step = (b[:, None, 1:k] < q[:, :, None]).sum(axis=2)  # interval index 0..K-1
     rows = np.broadcast_to(np.arange(n)[:, None], step.shape)
     start = b[rows, step]
@@ -255,7 +262,8 @@ def cumulative_hazard_at(profile: DischargeProfile, rates: npt.ArrayLike, bounds
 
 def time_of_cumulative_hazard(profile: DischargeProfile, rates: npt.ArrayLike,
                               bounds: npt.ArrayLike, days_in: npt.ArrayLike,
-                              target: float) -> FloatArray:
+                              target: float, *, exposure: FloatArray | None = None
+                              ) -> FloatArray:
     """First local-day instant where the cumulative hazard reaches ``target`` (NaN if not
     within the bounds). With ``target = log 2`` this is the median time of leaving.
 
@@ -267,8 +275,8 @@ def time_of_cumulative_hazard(profile: DischargeProfile, rates: npt.ArrayLike,
     b = np.asarray(bounds, dtype=float)
     d = np.asarray(days_in, dtype=float)
     n, k = r.shape
-    h_bounds = np.concatenate(
-        [np.zeros((n, 1)), np.cumsum(r * _interval_exposure(profile, b, d), axis=1)], axis=1)
+    e = interval_exposure(profile, b, d) if exposure is None else exposure
+    h_bounds = np.concatenate([np.zeros((n, 1)), np.cumsum(r * e, axis=1)], axis=1)
     reached = h_bounds[:, 1:] >= target
     out = np.full(n, np.nan)
     has = reached.any(axis=1)
