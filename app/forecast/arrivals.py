@@ -410,6 +410,18 @@ def emergency_rate(arrivals: Mapping[str, Any]) -> DailyRateModel:
 LEVEL_LOOKBACK_HALF_LIVES = 8
 
 
+def recent_days_read(arrivals: Mapping[str, Any]) -> float:
+    """Days before as_of whose discharged stays a forecast's emergency demand reads: today's
+    admissions and open time since local midnight (two days cover any zone), and with a
+    local level its lookback of whole days up to yesterday, plus a week so that the
+    window's start (the day after the first recorded discharge, :func:`_window`) is not
+    moved by where the loading stopped."""
+    half_life = emergency_rate(arrivals).level_half_life
+    if half_life is None:
+        return 2.0
+    return float(int(LEVEL_LOOKBACK_HALF_LIVES * half_life) + 2 + 7)
+
+
 def emergency_means(state: UnitState, arrivals: Mapping[str, Any], span: list[date]
                     ) -> list[float]:
     """:func:`_emergency_means`, kept with the state for these arrivals (a unit's own

@@ -22,11 +22,12 @@ from app.forecast.service import (
     ForecastInputs,
     ModelRecord,
     NoModel,
+    forecast_state,
     forecast_with_inputs,
     model_for,
     senders_of,
 )
-from app.state import UnitState, load_state
+from app.state import UnitState
 
 
 @dataclass(frozen=True)
@@ -43,11 +44,13 @@ def load_units(session: Session, units: Iterable[str], as_of: datetime, tz: Zone
     """Each unit's state (current stays only) and newest model at ``as_of``."""
     out = {}
     for unit in units:
-        state = load_state(session, unit, as_of, tz, with_history=False)
         try:
-            out[unit] = LoadedUnit(state, model_for(session, unit, as_of))
+            record = model_for(session, unit, as_of)
         except NoModel as exc:
-            out[unit] = LoadedUnit(state, None, str(exc))
+            out[unit] = LoadedUnit(forecast_state(session, unit, as_of, tz, None), None,
+                                   str(exc))
+            continue
+        out[unit] = LoadedUnit(forecast_state(session, unit, as_of, tz, record.payload), record)
     return out
 
 

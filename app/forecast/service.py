@@ -24,6 +24,7 @@ from app.forecast.arrivals import (
     emergency_means,
     emergency_rate,
     excess_beds,
+    recent_days_read,
     train_arrivals,
     unbooked_means,
 )
@@ -218,9 +219,18 @@ def forecast(session: Session, unit: str, as_of: datetime, tz: ZoneInfo, *,
         raise ValueError(f"days: must be at least 1, got {days}")
     as_of = as_of.astimezone(UTC)
     record = model_for(session, unit, as_of)
-    state = load_state(session, unit, as_of, tz, with_history=False)
+    state = forecast_state(session, unit, as_of, tz, record.payload)
     return forecast_from_state(state, record, days=days, paths=paths, seed=seed,
                                senders=senders_of(session, state, record))
+
+
+def forecast_state(session: Session, unit: str, as_of: datetime, tz: ZoneInfo,
+                   payload: dict[str, Any] | None) -> UnitState:
+    """What a forecast from the model ``payload`` reads at ``as_of``: the stays in the unit
+    then and those discharged in the days its demand looks back on (the local level's
+    recent admissions; ``recent_days_read``), not the whole history."""
+    recent = 0.0 if payload is None else recent_days_read(payload["arrivals"])
+    return load_state(session, unit, as_of, tz, with_history=False, recent_days=recent)
 
 
 def senders_of(session: Session, state: UnitState, record: ModelRecord,

@@ -37,7 +37,7 @@ from app.forecast.arrivals import emergency_means, unbooked_means
 from app.forecast.los import LosModel
 from app.forecast.routing import Routing
 from app.forecast.stay_grid import on_instants, own_census_offsets, predicted_on_grid
-from app.state import UnitState, load_state
+from app.state import UnitState
 from app.stats.arrivals import DailyRateModel
 from app.stats.occupancy import ArrivalStream, StayMixture, stream_presence
 from app.stats.transfer_presence import (
@@ -97,7 +97,9 @@ def senders_for(session: Session, unit: str, as_of: Any, tz: ZoneInfo,
             out.append(Sender(code))
             continue
         if state is None:
-            state = load_state(session, code, as_of, tz, with_history=False)
+            from app.forecast.service import forecast_state
+
+            state = forecast_state(session, code, as_of, tz, payload)
         out.append(Sender(code, state, payload))
     return out
 

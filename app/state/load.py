@@ -79,12 +79,14 @@ def with_current_observations(session: Session, state: UnitState) -> UnitState:
 
 
 def load_state(session: Session, unit: str, as_of: datetime, tz: ZoneInfo, *,
-               with_history: bool = True) -> UnitState:
+               with_history: bool = True, recent_days: float = 0.0) -> UnitState:
     """What was known about ``unit`` at ``as_of``.
 
-    With ``with_history=False`` only the stays in the unit at ``as_of`` (and their
-    observations) and the bookings planned from yesterday on are loaded: enough for a
-    forecast from a trained model, and much faster.
+    With ``with_history=False`` only the stays in the unit at ``as_of`` or discharged in the
+    ``recent_days`` before it (the observations of the current ones) and the bookings planned
+    from yesterday on are loaded: enough for a forecast from a trained model
+    (``app.forecast.service.forecast_state`` says how many recent days its demand reads), and
+    much faster.
     """
     stored_unit = repo.get_unit(session, unit)
     if stored_unit is None:
@@ -93,8 +95,9 @@ def load_state(session: Session, unit: str, as_of: datetime, tz: ZoneInfo, *,
     stay_query = select(*[getattr(Stay, c) for c in STAY_COLUMNS]).where(
         Stay.unit == unit, Stay.admitted_at <= as_of)
     if not with_history:
+        since = as_of - timedelta(days=recent_days)
         stay_query = stay_query.where(
-            (Stay.discharged_at.is_(None)) | (Stay.discharged_at > as_of))
+            (Stay.discharged_at.is_(None)) | (Stay.discharged_at > since))
     stay_rows = session.execute(stay_query.order_by(Stay.admitted_at, Stay.stay_id)).all()
     stays = pd.DataFrame(stay_rows, columns=STAY_COLUMNS)
     discharged = [d if d is not None and d <= as_of else None for d in stays["discharged_at"]]

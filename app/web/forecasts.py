@@ -29,11 +29,12 @@ from app.forecast.service import (
     expected_admissions,
     forecast_backdrop,
     forecast_on,
+    forecast_state,
     model_for,
     senders_of,
     store_forecast,
 )
-from app.state import UnitState, load_state, with_current_observations
+from app.state import UnitState, with_current_observations
 from app.store import repo
 from app.store.retry import is_busy
 
@@ -130,7 +131,8 @@ def _backdrop(session: Session, key: tuple[Any, ...], record: ModelRecord | None
     found = _backdrops.get(key)
     if found is None:
         _, unit, _, moment, _, _ = key
-        state = load_state(session, unit, moment, get_settings().tz, with_history=False)
+        state = forecast_state(session, unit, moment, get_settings().tz,
+                               None if record is None else record.payload)
         backdrop = None if record is None else forecast_backdrop(
             state, record, days=days, senders=senders_of(session, state, record, at_hand))
         _backdrops[key] = (backdrop, state)

@@ -1,5 +1,6 @@
 """Emergency demand that follows the data: after a change of level the trained model carries a
-local level and the forecast's expected admissions follow it; under overdispersion today's
+local level and the forecast's expected admissions follow it, also when the forecast reads
+the store (which loads only the recent stays the level needs); under overdispersion today's
 expectation is updated by the admissions already seen (the gamma-Poisson posterior, checked by
 numerical integration with scipy). Invented unit, simulated admissions."""
 
@@ -13,8 +14,15 @@ import pytest
 from scipy import integrate, stats
 
 from app.forecast.arrivals import emergency_means, emergency_rate, train_arrivals
+from app.forecast.service import forecast_state
+from app.ingest import import_file
+from app.state import load_state
 from app.state.frames import UnitState
+from app.store import db
+from tests.conftest import UTC_ZONE
+from tests.forecast.two_units import STAY_HEADER
 from tests.forecast.unit_state import unit_state
+from tests.reliability.small_unit import csv_bytes, stamp
 
 START = pd.Timestamp("2025-01-01", tz="UTC")
 
@@ -56,6 +64,42 @@ def test_forecast_follows_a_change_of_level_after_training() -> None:
     assert plain.mean() < 9.5
     assert followed.mean() - plain.mean() > 0.6 * (12.0 - plain.mean()), (plain, followed)
     assert followed.mean() < 12.5
+
+
+def test_a_forecast_from_the_store_reads_the_days_the_level_looks_back_on(db_url: str) -> None:
+    """The page and the command line load only recent stays (``forecast_state``); the local
+    level must see every admission of its lookback, as the backtest's full history does. With
+    the stays in the unit alone (the loading before), the level read a fraction of the
+    admissions and the demand came out far too low."""
+    rng = np.random.default_rng(1)
+    days = 420
+    mu = np.full(days, 8.0)
+    mu[330:] = 12.0
+    daily = rng.poisson(mu)
+    later = START + pd.Timedelta(days=days - 1, hours=8)
+    whole = _state(daily, later, 2)
+    rows = [[r.stay_id, "KV-TEST", stamp(r.admitted_at), "" if pd.isna(r.discharged_at)
+             else stamp(r.discharged_at), "emergency", "" if pd.isna(r.discharged_at) else "home",
+             60, "f", "ed", "", "", ""] for r in whole.stays.itertuples()]
+    with db.session_scope(db_url) as session:
+        import_file(session, "units", csv_bytes(["unit", "beds", "census_time"],
+                                                [["KV-TEST", 200, "00:00"]]),
+                    "units.csv", tz=UTC_ZONE, actor="test")
+        import_file(session, "stays", csv_bytes(STAY_HEADER, rows), "stays.csv", tz=UTC_ZONE,
+                    actor="test")
+    arrivals = train_arrivals(_state(daily, START + pd.Timedelta(days=360, hours=8), 2))
+    assert emergency_rate(arrivals).level_half_life is not None
+    span = [later.date() + timedelta(days=d) for d in range(8)]
+    with db.session_scope(db_url) as session:
+        full = load_state(session, "KV-TEST", later.to_pydatetime(), UTC_ZONE)
+        quick = forecast_state(session, "KV-TEST", later.to_pydatetime(), UTC_ZONE,
+                               {"arrivals": arrivals})
+        in_unit = load_state(session, "KV-TEST", later.to_pydatetime(), UTC_ZONE,
+                             with_history=False)
+    assert len(quick.stays) < len(full.stays) / 2
+    expected = emergency_means(full, arrivals, span)
+    assert emergency_means(quick, arrivals, span) == pytest.approx(expected, rel=1e-12)
+    assert np.mean(emergency_means(in_unit, arrivals, span)[1:]) < 0.8 * np.mean(expected[1:])
 
 
 # Europe/London is on UTC by the last day here (late October, after the clocks went back),
