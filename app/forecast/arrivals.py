@@ -64,6 +64,7 @@ ELECTIVE_WINDOW_DAYS = 26 * 7
 # Resolution at which the unit's fullness is read from the stays (minutes).
 OPEN_GRID_MINUTES = 15
 NS_PER_MINUTE = 60 * 10**9
+NS_PER_DAY = 86_400 * 10**9
 
 
 def _local(series: pd.Series, state: UnitState) -> pd.Series:
@@ -82,17 +83,24 @@ def _window(state: UnitState, days: int) -> tuple[date, date]:
     last = state.as_of.tz_convert(state.tz).date() - timedelta(days=1)
     first = last - timedelta(days=days - 1)
     for column in ("admitted_at", "discharged_at"):
-        earliest = _local(state.stays[column].dropna(), state).min()
+        earliest = state.stays[column].min()      # local time keeps the order of instants
         if pd.notna(earliest):
-            first = max(first, earliest.date() + timedelta(days=1))
+            first = max(first, earliest.tz_convert(state.tz).date() + timedelta(days=1))
     return first, last
 
 
 def _daily_counts(admitted_local: pd.Series, first: date, last: date
                   ) -> tuple[list[date], np.ndarray]:
-    days = [first + timedelta(days=i) for i in range((last - first).days + 1)]
-    counts = admitted_local.dt.date.value_counts()
-    return days, np.array([int(counts.get(d, 0)) for d in days])
+    """Admissions on each local day ``first``..``last`` (``admitted_local``: local times)."""
+    n_days = (last - first).days + 1
+    days = [first + timedelta(days=i) for i in range(n_days)]
+    if n_days <= 0:
+        return days, np.zeros(0, dtype=np.int64)
+    # Local wall-clock days counted from ``first`` (nanoseconds of the naive local times).
+    wall = admitted_local.dt.tz_localize(None).array.asi8
+    day = np.floor_divide(wall - pd.Timestamp(first).value, NS_PER_DAY)
+    inside = (day >= 0) & (day < n_days)
+    return days, np.bincount(day[inside], minlength=n_days).astype(np.int64)
 
 
 def _ns(values: pd.Series) -> np.ndarray:

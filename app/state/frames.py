@@ -17,7 +17,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass, field, replace
 from datetime import date, datetime, time
-from typing import Any
+from typing import Any, NamedTuple
 from zoneinfo import ZoneInfo
 
 import numpy as np
@@ -140,8 +140,7 @@ class UnitState:
         rows = np.flatnonzero(self.present_mask(self.as_of))
         columns = {name: self.stays[name].array.take(rows) for name in self.stays.columns}
         columns["days_in"] = (self.as_of.value - columns["admitted_at"].asi8) / 8.64e13
-        latest = latest_observations(self.observations, self.as_of,
-                                     stay_ids=pd.Series(columns["stay_id"]))
+        latest = _latest(self.observations, self.as_of, stay_ids=columns["stay_id"])
         columns.update(_widened(columns["stay_id"], latest, self.as_of))
         return pd.DataFrame(columns)
 
@@ -165,8 +164,19 @@ class UnitState:
         return b.take(np.flatnonzero(keep)).reset_index(drop=True)
 
 
+class _Latest(NamedTuple):
+    """Per (stay, name), ordered by stay and name: the latest value known and its time (UTC
+    ns), and the value before it (NaN: none)."""
+
+    stay_id: np.ndarray
+    name: np.ndarray
+    observed_ns: np.ndarray
+    value: np.ndarray
+    previous: np.ndarray
+
+
 def latest_observations(observations: pd.DataFrame, at: pd.Timestamp,
-                        stay_ids: pd.Series | None = None) -> pd.DataFrame:
+                        stay_ids: Any = None) -> pd.DataFrame:
     """Per (stay, name): the latest value known at ``at``, its time, and the previous value.
 
     Only rows with ``observed_at <= at`` and ``recorded_at <= at`` count, and each
@@ -174,15 +184,27 @@ def latest_observations(observations: pd.DataFrame, at: pd.Timestamp,
     Returns columns stay_id, name, observed_at, value, previous, ordered by stay and name.
     A page recomputes this after every score, so it works on plain arrays.
     """
+    found = _latest(observations, at, stay_ids)
+    if found is None:
+        return pd.DataFrame({"stay_id": pd.Series(dtype=object), "name": pd.Series(dtype=object),
+                             "observed_at": pd.Series(dtype="datetime64[ns, UTC]"),
+                             "value": pd.Series(dtype=float), "previous": pd.Series(dtype=float)})
+    return pd.DataFrame({
+        "stay_id": found.stay_id, "name": found.name,
+        "observed_at": pd.to_datetime(found.observed_ns, utc=True),
+        "value": found.value, "previous": found.previous})
+
+
+def _latest(observations: pd.DataFrame, at: pd.Timestamp, stay_ids: Any = None
+            ) -> _Latest | None:
+    """:func:`latest_observations` as arrays (None: nothing known)."""
     obs = observations
     at_ns = pd.Timestamp(at).value
     keep = (obs["observed_at"].array.asi8 <= at_ns) & (obs["recorded_at"].array.asi8 <= at_ns)
     if stay_ids is not None:
         keep &= obs["stay_id"].isin(stay_ids).to_numpy()
     if not keep.any():
-        return pd.DataFrame({"stay_id": pd.Series(dtype=object), "name": pd.Series(dtype=object),
-                             "observed_at": pd.Series(dtype="datetime64[ns, UTC]"),
-                             "value": pd.Series(dtype=float), "previous": pd.Series(dtype=float)})
+        return None
     stay, stays = pd.factorize(obs["stay_id"].to_numpy()[keep], sort=True)
     name, names = pd.factorize(obs["name"].to_numpy()[keep], sort=True)
     observed = obs["observed_at"].array.asi8[keep]
@@ -198,26 +220,24 @@ def latest_observations(observations: pd.DataFrame, at: pd.Timestamp,
     continues = np.r_[False, (stay[1:] == stay[:-1]) & (name[1:] == name[:-1])]
     previous = np.where(continues, np.r_[np.nan, value[:-1]], np.nan)
     last = np.r_[~continues[1:], True]
-    return pd.DataFrame({
-        "stay_id": stays[stay[last]], "name": names[name[last]],
-        "observed_at": pd.to_datetime(observed[last], utc=True),
-        "value": value[last], "previous": previous[last]})
+    return _Latest(np.asarray(stays)[stay[last]], np.asarray(names)[name[last]],
+                   observed[last], value[last], previous[last])
 
 
-def _widened(stay_ids: Any, latest: pd.DataFrame, at: pd.Timestamp) -> dict[str, np.ndarray]:
+def _widened(stay_ids: Any, latest: _Latest | None, at: pd.Timestamp
+             ) -> dict[str, np.ndarray]:
     """One column triple per observation name (value, change, hours), aligned to
     ``stay_ids``."""
-    if latest.empty:
+    if latest is None:
         return {}
-    row = pd.Index(stay_ids).get_indexer(latest["stay_id"])
-    hours = (at.value - latest["observed_at"].array.asi8) / 3.6e12
-    value = latest["value"].to_numpy(dtype=float)
-    change = value - latest["previous"].to_numpy(dtype=float)
-    names = latest["name"].to_numpy()
+    row = pd.Index(stay_ids).get_indexer(latest.stay_id)
+    hours = (at.value - latest.observed_ns) / 3.6e12
+    change = latest.value - latest.previous
+    names = latest.name
     columns: dict[str, np.ndarray] = {}
     for name in sorted(set(names)):
         found = (names == name) & (row >= 0)
-        for suffix, source in (("", value), ("_change", change), ("_hours", hours)):
+        for suffix, source in (("", latest.value), ("_change", change), ("_hours", hours)):
             column = np.full(len(stay_ids), np.nan)
             column[row[found]] = source[found]
             columns[f"{name}{suffix}"] = column
