@@ -215,16 +215,16 @@ def open_shares(state: UnitState, first: date, last: date, excess: int,
     start = pd.Timestamp(localize(datetime.combine(first, time(0)), state.tz))
     stop = pd.Timestamp(localize(datetime.combine(last + timedelta(days=1), time(0)), state.tz))
     grid = pd.date_range(start, stop, freq=f"{OPEN_GRID_MINUTES}min", inclusive="left")
-    local = grid.tz_convert(state.tz)
-    day_index = (local.tz_localize(None).normalize() - pd.Timestamp(first)).days.to_numpy()
+    # Local wall-clock nanoseconds: the local day from ``first`` and the clock hour.
+    wall = grid.tz_convert(state.tz).tz_localize(None).asi8
     n_days = (last - first).days + 1
-    day_index = np.clip(day_index, 0, n_days - 1)
+    day_index = np.clip((wall - pd.Timestamp(first).value) // NS_PER_DAY, 0, n_days - 1)
     beds = np.array([state.beds_on(first + timedelta(days=i)) for i in range(n_days)],
                     dtype=object)
     ceiling = np.array([np.inf if b is None else b + excess for b in beds], dtype=float)
     is_open = (_occupancy_at(state, np.asarray(grid.asi8, dtype=np.int64), lag_minutes)
                < ceiling[day_index]).astype(float)
-    hour = np.asarray(local.hour, dtype=np.int64)
+    hour = (wall % NS_PER_DAY) // (60 * NS_PER_MINUTE)
     weight = np.asarray(hour_weight, dtype=float)[hour]
     by_day = (np.bincount(day_index, weights=weight * is_open, minlength=n_days)
               / np.maximum(np.bincount(day_index, weights=weight, minlength=n_days), 1e-300))
