@@ -64,8 +64,9 @@ IntArray = npt.NDArray[np.int64]
 
 # Paths of the correction. At 1,000 paths the Monte-Carlo standard error of P(full) on a night
 # where every path reaches the ceiling is at most 0.5 / sqrt(1000) = 0.016; nights the ceiling
-# is rarely reached have much less (only those paths carry noise). A 7-day forecast of a
-# 28-bed unit spends about 10 ms on them (tests/benchmarks/test_bench_forecast.py). The same
+# is rarely reached have much less (only those paths carry noise). A unit of the hospital
+# benchmark spends about 3 ms drawing them and under 1 ms following them (compiled;
+# tests/benchmarks/test_bench_hospital.py). The same
 # paths give the week's any-night risk (``Losses.kept``; standard error at most 0.016 too:
 # on the demo's units, 8 seeds at 8 mornings, 0.008-0.013, and the mean within 0.011 of a
 # 20,000-path run).
