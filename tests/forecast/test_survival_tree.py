@@ -106,6 +106,25 @@ def test_exposure_is_the_integral_of_the_profile() -> None:
     np.testing.assert_allclose(got, expected, rtol=1e-9)
 
 
+def test_compiled_exposure_equals_the_pieces_the_tree_is_fitted_with() -> None:
+    # The forecast integrates the profile interval by interval (compiled); the tree's fit
+    # lays the same pieces out as arrays (DischargeProfile.pieces). The two must agree to
+    # the last bit, or a fitted rate would meet a slightly different exposure.
+    rng = np.random.default_rng(8)
+    profile = DischargeProfile(hourly=rng.uniform(0.05, 3.0, 24),
+                               weekday=rng.uniform(0.3, 1.5, 7),
+                               stay_edges=np.array([0.25, 0.5, 1.0, 1.5, 2.0, 3.0, 7.0, 14.0]),
+                               stay_day=rng.uniform(0.2, 2.0, 9))
+    start = 20_000 + rng.uniform(0.0, 30.0, 5000)
+    start[:1000] = np.round(start[:1000] * 24) / 24          # on the hour: cuts that tie
+    stop = start + rng.exponential(1.0, 5000) * (rng.random(5000) < 0.95)
+    days_in = rng.exponential(3.0, 5000) * (rng.random(5000) < 0.9)
+    row, weekday, stay_bin, share = profile.pieces(start, stop, days_in)
+    laid_out = np.bincount(row, weights=share * profile.weekday[weekday]
+                           * profile.stay_day[stay_bin], minlength=start.size)
+    np.testing.assert_array_equal(profile.exposure(start, stop, days_in), laid_out)
+
+
 def test_flat_profile_gives_exponential_survival_and_median() -> None:
     # Closed form: constant hazard r per interval, H(t) = sum r_k * (time in interval k).
     profile = DischargeProfile.flat()

@@ -10,6 +10,7 @@ from typing import Any
 import numpy as np
 import numpy.typing as npt
 
+from app.stats.survival_tree import exposure_kernel
 from app.stats.survival_tree.rules import FloatArray, IntArray
 
 # 1970-01-01 (day 0 of the local-day axis) was a Thursday; weekday 0 is Monday.
@@ -144,11 +145,16 @@ class DischargeProfile:
 
     def exposure(self, start: npt.ArrayLike, stop: npt.ArrayLike,
                  days_in: npt.ArrayLike) -> FloatArray:
-        """Typical days of exposure in each [start, stop) (profile integrated over it)."""
-        a = np.asarray(start, dtype=float)
-        row, weekday, stay_bin, share = self.pieces(a, stop, days_in)
-        values = share * self.weekday[weekday] * self.stay_day[stay_bin]
-        return np.asarray(np.bincount(row, weights=values, minlength=a.size), dtype=float)
+        """Typical days of exposure in each [start, stop) (profile integrated over it): the
+        :meth:`pieces` at their factors, summed (compiled, interval by interval:
+        app/stats/survival_tree/exposure_kernel.py)."""
+        a = np.ascontiguousarray(start, dtype=float).ravel()
+        b = np.broadcast_to(np.asarray(stop, dtype=float), a.shape)
+        d = np.broadcast_to(np.asarray(days_in, dtype=float), a.shape)
+        return np.asarray(exposure_kernel.exposure(
+            a, np.ascontiguousarray(b), np.ascontiguousarray(d), self._hour_share,
+            self._hour_cumulative, self.weekday, self.stay_edges, self.stay_day,
+            _EPOCH_WEEKDAY), dtype=float)
 
     def intensity(self, at: npt.ArrayLike, days_in: npt.ArrayLike) -> FloatArray:
         """Profile value (per typical day) at local instants, right-continuous from the left
