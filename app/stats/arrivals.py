@@ -375,10 +375,12 @@ def choose_demand_terms(days: Sequence[date], counts: npt.ArrayLike,
     seasonal) Poisson GLM is fitted on the days before it; each half-life's level is computed
     from those days' admissions against the fit; the ``horizon`` days after the origin are
     scored by their predictive log-probability (Poisson, or NB2 with dispersion ``alpha``,
-    mean x open share x level). The candidate with the highest mean score wins; ties keep the
-    simpler one (no season, no level). The seasonal candidate needs ``SEASON_MIN_DAYS`` of
-    history before every origin. The chosen candidate's held-out days then give the
-    forecast's dispersion (:func:`heldout_dispersion`), when there are ``MIN_HELDOUT_DAYS``.
+    mean x open share x level). The first candidate (no season before season; no level, then
+    the half-lives in the order given) whose mean score is within one standard error of the
+    best's is kept (the one-standard-error rule, below). The seasonal candidate needs
+    ``SEASON_MIN_DAYS`` of history before every origin. The chosen candidate's held-out days
+    then give the forecast's dispersion (:func:`heldout_dispersion`), when there are
+    ``MIN_HELDOUT_DAYS``.
 
     Parameters
     ----------
