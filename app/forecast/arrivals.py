@@ -38,6 +38,7 @@ import pandas as pd
 
 from app.forecast.training_data import TooLittleHistory
 from app.state import UnitState
+from app.state.frames import utc_ns
 from app.stats.arrivals import (
     MIN_EXPOSURE,
     DailyRateModel,
@@ -103,19 +104,15 @@ def _daily_counts(admitted_local: pd.Series, first: date, last: date
     return days, np.bincount(day[inside], minlength=n_days).astype(np.int64)
 
 
-def _ns(values: pd.Series) -> np.ndarray:
-    return np.asarray(pd.DatetimeIndex(values).asi8, dtype=np.int64)
-
-
 def _occupancy_at(state: UnitState, at_ns: np.ndarray, lag_minutes: int = 0) -> np.ndarray:
     """Stays in the unit at each instant (UTC ns), as known at ``state.as_of``: admitted at or
     before it and not discharged by then. ``lag_minutes``: every recorded discharge read that
     much earlier (never before its admission), the allowance for late recording
     (:mod:`app.stats.ceiling`)."""
-    admitted_all = _ns(state.stays["admitted_at"])
+    admitted_all = utc_ns(state.stays["admitted_at"])
     admitted = np.sort(admitted_all)
     gone = state.stays["discharged_at"].notna().to_numpy()
-    discharged = _ns(state.stays["discharged_at"].dropna())
+    discharged = utc_ns(state.stays["discharged_at"].dropna())
     if lag_minutes:
         discharged = np.maximum(discharged - int(lag_minutes) * NS_PER_MINUTE,
                                 admitted_all[gone])
@@ -158,7 +155,7 @@ def _admission_levels(state: UnitState, first: date, last: date
         return None
     staffed = np.array([np.nan if b is None else float(b) for b in beds])
     emergency = inside & (stays["admission_type"] == "emergency").to_numpy()
-    at_ns = _ns(stays["admitted_at"])[emergency]
+    at_ns = utc_ns(stays["admitted_at"])[emergency]
     day_of = np.array([(d - first).days for d in local_day[emergency]], dtype=np.int64)
     start = pd.Timestamp(localize(datetime.combine(first, time(0)), state.tz))
     stop = pd.Timestamp(localize(datetime.combine(last + timedelta(days=1), time(0)), state.tz))

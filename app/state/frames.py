@@ -109,9 +109,9 @@ class UnitState:
         if instant > self.as_of:
             raise ValueError(f"instant {instant} is after as_of {self.as_of}: unknown then")
         at = instant.value
-        admitted = _ns(self.stays["admitted_at"]) <= at
+        admitted = utc_ns(self.stays["admitted_at"]) <= at
         discharged = self.stays["discharged_at"]
-        still_in = discharged.isna().to_numpy() | (_ns(discharged) > at)
+        still_in = discharged.isna().to_numpy() | (utc_ns(discharged) > at)
         return admitted & still_in
 
     def occupancy_at(self, instant: pd.Timestamp) -> int:
@@ -139,7 +139,7 @@ class UnitState:
         """
         rows = np.flatnonzero(self.present_mask(self.as_of))
         columns = {name: self.stays[name].array.take(rows) for name in self.stays.columns}
-        columns["days_in"] = (self.as_of.value - _ns(pd.Series(columns["admitted_at"]))) / 8.64e13
+        columns["days_in"] = (self.as_of.value - utc_ns(columns["admitted_at"])) / 8.64e13
         latest = _latest(self.observations, self.as_of, stay_ids=columns["stay_id"])
         columns.update(_widened(columns["stay_id"], latest, self.as_of))
         return pd.DataFrame(columns)
@@ -164,13 +164,15 @@ class UnitState:
         return b.take(np.flatnonzero(keep)).reset_index(drop=True)
 
 
-def _ns(instants: pd.Series) -> np.ndarray:
-    """UTC nanoseconds of a column of instants (NaT: the least int64). A column of the state's
-    frames is datetime64 already; an empty or hand-built one may hold objects."""
-    if isinstance(instants.dtype, pd.DatetimeTZDtype) or instants.dtype.kind == "M":
-        return np.asarray(instants.array.asi8, dtype=np.int64)
-    return np.asarray(pd.DatetimeIndex(pd.to_datetime(instants, utc=True)).asi8,
-                      dtype=np.int64)
+def utc_ns(values: Any) -> np.ndarray:
+    """UTC instants as int64 nanoseconds (NaT: the least int64; naive times read as UTC). A
+    column of the state's frames is datetime64 already and is read as it is; other values
+    (lists of datetimes, an empty or hand-built column of objects) go through
+    ``pandas.to_datetime``."""
+    dtype = getattr(values, "dtype", None)
+    if dtype is not None and (isinstance(dtype, pd.DatetimeTZDtype) or dtype.kind == "M"):
+        return np.asarray(pd.DatetimeIndex(values).asi8, dtype=np.int64)
+    return np.asarray(pd.DatetimeIndex(pd.to_datetime(values, utc=True)).asi8, dtype=np.int64)
 
 
 class _Latest(NamedTuple):
@@ -209,7 +211,7 @@ def _latest(observations: pd.DataFrame, at: pd.Timestamp, stay_ids: Any = None
     """:func:`latest_observations` as arrays (None: nothing known)."""
     obs = observations
     at_ns = pd.Timestamp(at).value
-    observed_all, recorded_all = _ns(obs["observed_at"]), _ns(obs["recorded_at"])
+    observed_all, recorded_all = utc_ns(obs["observed_at"]), utc_ns(obs["recorded_at"])
     keep = (observed_all <= at_ns) & (recorded_all <= at_ns)
     if stay_ids is not None:
         keep &= obs["stay_id"].isin(stay_ids).to_numpy()

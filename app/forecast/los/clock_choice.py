@@ -23,8 +23,8 @@ import pandas as pd
 
 from app.forecast.los.constants import NS_PER_DAY, FloatArray
 from app.forecast.los.design import Design
-from app.forecast.los.rows import _ns
 from app.forecast.los.selection import _admission_x, _fit_groups, _stays_at
+from app.state.frames import utc_ns
 from app.stats.survival_tree import DischargeProfile
 from app.timeutil import census_instants_after
 
@@ -44,7 +44,7 @@ def choose_newcomer_clock(design: Design, stays: pd.DataFrame, cutoff_ns: int,
     """``{"chosen": bool, "log_score_calendar", "log_score_clock", "stays", ...}``."""
     from app.forecast.newcomer_clock import stay_durations
 
-    admitted = _ns(stays["admitted_at"])
+    admitted = utc_ns(stays["admitted_at"])
     val_days = min(90.0, 0.25 * (cutoff_ns - int(admitted.min())) / NS_PER_DAY)
     v_ns = int(cutoff_ns - val_days * NS_PER_DAY)
     later = _stays_at(stays, cutoff_ns)

@@ -6,7 +6,6 @@ from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, replace
 from datetime import date, time, timedelta
 from functools import lru_cache
-from typing import Any
 from zoneinfo import ZoneInfo
 
 import numpy as np
@@ -21,14 +20,8 @@ from app.forecast.los.constants import (
     FloatArray,
     IntArray,
 )
-from app.state.frames import UnitState, latest_observations
+from app.state.frames import UnitState, latest_observations, utc_ns
 from app.timeutil import localize
-
-
-def _ns(values: Any) -> IntArray:
-    """UTC instants as int64 nanoseconds (NaT as the minimum int64)."""
-    index = pd.DatetimeIndex(pd.to_datetime(values, utc=True))
-    return np.asarray(index.asi8, dtype=np.int64)
 
 
 def _local_days(ns: IntArray, tz: ZoneInfo) -> FloatArray:
@@ -134,8 +127,8 @@ def _observations_at(observations: pd.DataFrame, names: Sequence[str], ids: pd.I
             continue
         obs = observations.loc[pick]
         stay = obs_code[pick].astype(np.int64)
-        observed = _ns(obs["observed_at"])
-        known = np.maximum(observed, _ns(obs["recorded_at"]))
+        observed = utc_ns(obs["observed_at"])
+        known = np.maximum(observed, utc_ns(obs["recorded_at"]))
         version_value = obs["value"].to_numpy(dtype=float)
         order = np.lexsort((known, observed, stay))
         stay, observed, known = stay[order], observed[order], known[order]
@@ -240,8 +233,8 @@ class Landmarks:
 
 def _stay_ends(stays: pd.DataFrame, as_of_ns: int) -> tuple[IntArray, IntArray,
                                                              npt.NDArray[np.bool_]]:
-    admitted = _ns(stays["admitted_at"])
-    discharged = _ns(stays["discharged_at"])
+    admitted = utc_ns(stays["admitted_at"])
+    discharged = utc_ns(stays["discharged_at"])
     ended = stays["discharged_at"].notna().to_numpy() & (discharged <= as_of_ns)
     end = np.where(ended, discharged, as_of_ns)
     return admitted, end, ended
@@ -260,7 +253,7 @@ def build_landmarks(state: UnitState, *, landmark_clock: time = LANDMARK_CLOCK,
     unit, up to ``state.as_of`` (stays still in are censored there, never dropped)."""
     stays = state.stays.reset_index(drop=True)
     names = observation_names(state) if names is None else list(names)
-    as_of_ns = int(_ns([state.as_of])[0])
+    as_of_ns = int(utc_ns([state.as_of])[0])
     admitted, end, ended = _stay_ends(stays, as_of_ns)
     if stays.empty:
         empty = np.zeros(0, dtype=np.int64)
@@ -334,7 +327,7 @@ def interval_rows(landmarks: Landmarks, census_time: time, tz: ZoneInfo, *,
         z = np.zeros(0)
         zi = np.zeros(0, dtype=np.int64)
         return IntervalRows(zi, zi, zi, z, z, z, np.zeros(0, dtype=bool), z, z)
-    admitted = _ns(landmarks.stays["admitted_at"])[landmarks.stay_index]
+    admitted = utc_ns(landmarks.stays["admitted_at"])[landmarks.stay_index]
     axis = _axis_for(int(landmarks.at_ns.min()), int(landmarks.end_ns.max()), horizon + 2,
                      LANDMARK_CLOCK, census_time, tz)
     c1 = _census_after(axis, landmarks.at_ns)

@@ -24,10 +24,11 @@ from app.forecast.los.constants import (
     IntArray,
 )
 from app.forecast.los.design import Design, _row_matrix, make_design
-from app.forecast.los.rows import IntervalRows, Landmarks, _ns, _rows_weekday, interval_rows
+from app.forecast.los.rows import IntervalRows, Landmarks, _rows_weekday, interval_rows
 from app.forecast.training_data import (
     KnownColumnsOnly,
 )
+from app.state.frames import utc_ns
 from app.stats.stay_groups import StayGroups, fit_stay_groups, round_up_to_hours
 from app.stats.survival_tree import (
     DischargeProfile,
@@ -47,8 +48,8 @@ class _StayTable:
 
 
 def _stays_at(stays: pd.DataFrame, cutoff_ns: int) -> _StayTable:
-    admitted = _ns(stays["admitted_at"])
-    discharged = _ns(stays["discharged_at"])
+    admitted = utc_ns(stays["admitted_at"])
+    discharged = utc_ns(stays["discharged_at"])
     keep = admitted <= cutoff_ns
     ended = stays["discharged_at"].notna().to_numpy() & (discharged <= cutoff_ns)
     end = np.where(ended, discharged, cutoff_ns)
@@ -239,7 +240,7 @@ def _select_groups(design: Design, stays: pd.DataFrame, cutoff_ns: int
     from sksurv.tree import SurvivalTree
     from sksurv.util import Surv
 
-    admitted = _ns(stays["admitted_at"])
+    admitted = utc_ns(stays["admitted_at"])
     first = int(admitted.min())
     val_days = min(90.0, 0.25 * (cutoff_ns - first) / NS_PER_DAY)
     v_ns = int(cutoff_ns - val_days * NS_PER_DAY)
@@ -304,7 +305,7 @@ def _fit_groups(design: Design, stays: pd.DataFrame, cutoff_ns: int, params: Map
         return groups
     from app.forecast.newcomer_clock import stay_durations
 
-    start = _ns(stays["admitted_at"])[table.index]
+    start = utc_ns(stays["admitted_at"])[table.index]
     end = start + np.round(table.days * NS_PER_DAY).astype(np.int64)
     return groups.with_clock_fits(x, stay_durations(clock[0], clock[1], start, end),
                                   table.ended, rng=seed)

@@ -25,7 +25,7 @@ from app.forecast.los.constants import (
 from app.forecast.los.design import make_design
 from app.forecast.los.metrics import _test_metrics
 from app.forecast.los.model import LosModel
-from app.forecast.los.rows import _ns, build_landmarks, interval_rows, observation_names
+from app.forecast.los.rows import build_landmarks, interval_rows, observation_names
 from app.forecast.los.selection import (
     _fit_groups,
     _fit_hazard,
@@ -41,7 +41,7 @@ from app.forecast.training_data import (
     require_history,
     screen_scores,
 )
-from app.state.frames import UnitState
+from app.state.frames import UnitState, utc_ns
 
 CURVE_USES = {
     "hazard_tree": "per-stay P(in the unit) at each census instant over the next "
@@ -97,11 +97,11 @@ def train_los(state: UnitState, *, test_days: float | None = None,
     rng = np.random.default_rng(seed)
     tz = state.tz
     names = observation_names(state)
-    until_ns = int(_ns([state.as_of])[0])
+    until_ns = int(utc_ns([state.as_of])[0])
     full = build_landmarks(state, landmark_clock=landmark_clock, names=names)
     require_history(state.unit, int(np.unique(full.stay_index[full.ended]).size),
                     _iso(until_ns, tz))
-    first_ns = int(_ns(state.stays["admitted_at"]).min())
+    first_ns = int(utc_ns(state.stays["admitted_at"]).min())
     window_days = (until_ns - first_ns) / NS_PER_DAY
     if test_days is None:
         test_days = min(90.0, 0.25 * window_days)
