@@ -36,6 +36,7 @@ import numpy as np
 import numpy.typing as npt
 import pandas as pd
 
+from app.forecast.los.constants import NS_PER_DAY
 from app.forecast.training_data import TooLittleHistory
 from app.state import UnitState
 from app.state.frames import utc_ns
@@ -65,7 +66,6 @@ ELECTIVE_WINDOW_DAYS = 26 * 7
 # Resolution at which the unit's fullness is read from the stays (minutes).
 OPEN_GRID_MINUTES = 15
 NS_PER_MINUTE = 60 * 10**9
-NS_PER_DAY = 86_400 * 10**9
 
 
 def _local(series: pd.Series, state: UnitState) -> pd.Series:
@@ -137,6 +137,25 @@ def soft_excess(admitted_over: npt.ArrayLike, time_over: npt.ArrayLike,
                         min_days=min_days).excess
 
 
+def _beds_by_day(state: UnitState, first: date, last: date) -> list[int | None]:
+    """Staffed beds on each local day ``first``..``last`` (None: not known)."""
+    return [state.beds_on(first + timedelta(days=i)) for i in range((last - first).days + 1)]
+
+
+def _quarter_hours(state: UnitState, first: date, last: date
+                   ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Every ``OPEN_GRID_MINUTES`` of the local days ``first``..``last``: the instants (UTC
+    ns), each one's local day counted from ``first`` and its local clock hour (read off the
+    local wall-clock nanoseconds)."""
+    start = pd.Timestamp(localize(datetime.combine(first, time(0)), state.tz))
+    stop = pd.Timestamp(localize(datetime.combine(last + timedelta(days=1), time(0)), state.tz))
+    grid = pd.date_range(start, stop, freq=f"{OPEN_GRID_MINUTES}min", inclusive="left")
+    wall = grid.tz_convert(state.tz).tz_localize(None).asi8
+    day = np.clip((wall - pd.Timestamp(first).value) // NS_PER_DAY, 0, (last - first).days)
+    return (np.asarray(grid.asi8, dtype=np.int64), day,
+            (wall % NS_PER_DAY) // (60 * NS_PER_MINUTE))
+
+
 def _admission_levels(state: UnitState, first: date, last: date
                       ) -> Callable[[int], Levels] | None:
     """For :func:`app.stats.ceiling.best_ceiling`: the levels over staffed beds just before each
@@ -148,24 +167,16 @@ def _admission_levels(state: UnitState, first: date, last: date
     inside = ((local_day >= first) & (local_day <= last)).to_numpy()
     if not inside.any():
         return None
-    n_days = (last - first).days + 1
-    beds = np.array([state.beds_on(first + timedelta(days=i)) for i in range(n_days)],
-                    dtype=object)
+    beds = _beds_by_day(state, first, last)
     if all(b is None for b in beds):
         return None
     staffed = np.array([np.nan if b is None else float(b) for b in beds])
     emergency = inside & (stays["admission_type"] == "emergency").to_numpy()
     at_ns = utc_ns(stays["admitted_at"])[emergency]
     day_of = np.array([(d - first).days for d in local_day[emergency]], dtype=np.int64)
-    start = pd.Timestamp(localize(datetime.combine(first, time(0)), state.tz))
-    stop = pd.Timestamp(localize(datetime.combine(last + timedelta(days=1), time(0)), state.tz))
-    grid = pd.date_range(start, stop, freq=f"{OPEN_GRID_MINUTES}min", inclusive="left")
-    grid_ns = np.asarray(grid.asi8, dtype=np.int64)
-    local = grid.tz_convert(state.tz)
-    grid_day = np.clip((local.tz_localize(None).normalize() - pd.Timestamp(first)).days
-                       .to_numpy(), 0, n_days - 1)
+    grid_ns, grid_day, hour = _quarter_hours(state, first, last)
     profile = hourly_profile(_local(stays["admitted_at"], state)[emergency].dt.hour)
-    days = profile[np.asarray(local.hour, dtype=np.int64)] * 24 * OPEN_GRID_MINUTES / 1440
+    days = profile[hour] * 24 * OPEN_GRID_MINUTES / 1440
     staffed_b, staffed_g = staffed[day_of], staffed[grid_day]
     known_b, known_g = ~np.isnan(staffed_b), ~np.isnan(staffed_g)
     if not known_b.any():
@@ -209,19 +220,11 @@ def open_shares(state: UnitState, first: date, last: date, excess: int,
     (:func:`learn_ceiling`; on a simulated loss unit whose discharges are written 0-6 h late,
     the open share read from the recorded times was 0.52-0.55 where Erlang B gives 0.785,
     and 0.81-0.86 with the allowance: tests/stats/test_ceiling.py)."""
-    start = pd.Timestamp(localize(datetime.combine(first, time(0)), state.tz))
-    stop = pd.Timestamp(localize(datetime.combine(last + timedelta(days=1), time(0)), state.tz))
-    grid = pd.date_range(start, stop, freq=f"{OPEN_GRID_MINUTES}min", inclusive="left")
-    # Local wall-clock nanoseconds: the local day from ``first`` and the clock hour.
-    wall = grid.tz_convert(state.tz).tz_localize(None).asi8
+    grid_ns, day_index, hour = _quarter_hours(state, first, last)
     n_days = (last - first).days + 1
-    day_index = np.clip((wall - pd.Timestamp(first).value) // NS_PER_DAY, 0, n_days - 1)
-    beds = np.array([state.beds_on(first + timedelta(days=i)) for i in range(n_days)],
-                    dtype=object)
-    ceiling = np.array([np.inf if b is None else b + excess for b in beds], dtype=float)
-    is_open = (_occupancy_at(state, np.asarray(grid.asi8, dtype=np.int64), lag_minutes)
-               < ceiling[day_index]).astype(float)
-    hour = (wall % NS_PER_DAY) // (60 * NS_PER_MINUTE)
+    ceiling = np.array([np.inf if b is None else b + excess
+                        for b in _beds_by_day(state, first, last)], dtype=float)
+    is_open = (_occupancy_at(state, grid_ns, lag_minutes) < ceiling[day_index]).astype(float)
     weight = np.asarray(hour_weight, dtype=float)[hour]
     by_day = (np.bincount(day_index, weights=weight * is_open, minlength=n_days)
               / np.maximum(np.bincount(day_index, weights=weight, minlength=n_days), 1e-300))

@@ -29,6 +29,7 @@ from app.forecast.arrivals import (
     unbooked_means,
 )
 from app.forecast.los import LosModel, train_los
+from app.forecast.los.constants import NS_PER_DAY
 from app.forecast.models import newest_model, save_model
 from app.forecast.newcomer_clock import elapsed
 from app.forecast.routing import fit_routing
@@ -58,7 +59,8 @@ DEFAULT_DAYS = 7
 # Joint paths of the week for the any-night risk where the unit has no ceiling; under a
 # ceiling the ceiling's own paths serve (app.stats.loss.LOSS_PATHS).
 WEEK_PATHS = 5000
-NS_PER_DAY = 86_400e9
+
+
 class NoModel(LookupError):
     """No trained model may be used for this instant."""
 

@@ -89,6 +89,7 @@ def step_ceiling(admitted_over: npt.ArrayLike, time_over: npt.ArrayLike,
     exposure = np.cumsum(np.bincount(levels - low, weights=weight, minlength=n_levels))
     total_n, total_e = float(count[-1]), float(exposure[-1])
     best: StepFit | None = None
+    best_ll = -np.inf
     for i in range(-low, n_levels):
         # Below c = low + i: the levels low .. c - 1, i.e. the first i bins.
         n_below = float(count[i - 1]) if i > 0 else 0.0
@@ -99,8 +100,8 @@ def step_ceiling(admitted_over: npt.ArrayLike, time_over: npt.ArrayLike,
         if n_above / e_above >= admit_share * n_below / e_below:
             continue
         ll = _poisson_part(n_below, e_below) + _poisson_part(n_above, e_above)
-        if best is None or best.log_likelihood is None or ll > best.log_likelihood:
-            best = StepFit(low + i, ll)
+        if best is None or ll > best_ll:
+            best, best_ll = StepFit(low + i, ll), ll
     return fallback if best is None else best
 
 
@@ -117,20 +118,14 @@ def best_ceiling(levels_for_lag: Callable[[int], Levels],
     moved ``minutes`` earlier. The likelihoods compare one model of the same admission instants
     under different readings of the occupancy; on a tie the smaller allowance is kept. Without
     a step at any allowance: the fallback of the allowance 0."""
-    best: Ceiling | None = None
-    first: Ceiling | None = None
-    for minutes in lags:
-        fit = step_ceiling(*levels_for_lag(int(minutes)), admit_share=admit_share,
-                           min_days=min_days)
-        found = Ceiling(fit.excess, int(minutes), fit.log_likelihood)
-        if first is None:
-            first = found
-        if fit.log_likelihood is None:
-            continue
-        if best is None or best.log_likelihood is None or fit.log_likelihood > best.log_likelihood:
-            best = found
-    if best is not None:
-        return best
-    if first is None:
+    fits = [Ceiling(fit.excess, int(minutes), fit.log_likelihood)
+            for minutes in lags
+            for fit in [step_ceiling(*levels_for_lag(int(minutes)), admit_share=admit_share,
+                                     min_days=min_days)]]
+    if not fits:
         raise ValueError("lags: at least one allowance is needed")
-    return Ceiling(first.excess, 0, None)
+    stepped = [(f.log_likelihood, f) for f in fits if f.log_likelihood is not None]
+    if not stepped:
+        return Ceiling(fits[0].excess, 0, None)
+    # max keeps the first of equal likelihoods: the smaller allowance on a tie.
+    return max(stepped, key=lambda pair: pair[0])[1]

@@ -50,31 +50,18 @@ def _bucket_table(values, buckets):  # type: ignore[no-untyped-def]
 
 
 @numba.njit(cache=True, nogil=True)
-def _search(values, table, low, inverse, query):  # type: ignore[no-untyped-def]
-    """``np.searchsorted(values, query, side="left")`` for non-decreasing ``values``: from the
-    query's bucket (:func:`_bucket_table`) step on past values below the query and back over
-    values at or above it, so the answer is exact whatever rounding put at the edge."""
+def _search(values, table, low, inverse, query, right=False):  # type: ignore[no-untyped-def]
+    """``np.searchsorted(values, query, side="right" if right else "left")`` for
+    non-decreasing ``values``: from the query's bucket (:func:`_bucket_table`) step on past
+    values before the query's place and back over values after it, so the answer is exact
+    whatever rounding put at the edge."""
     b = (query - low) * inverse
     top = table.size - 1
     j = table[0] if not b > 0 else (table[top] if b >= top else table[int(b)])
     n = values.size
-    while j < n and values[j] < query:
+    while j < n and (values[j] <= query if right else values[j] < query):
         j += 1
-    while j > 0 and values[j - 1] >= query:
-        j -= 1
-    return j
-
-
-@numba.njit(cache=True, nogil=True)
-def _search_right(values, table, low, inverse, query):  # type: ignore[no-untyped-def]
-    """``np.searchsorted(values, query, side="right")``, as :func:`_search`."""
-    b = (query - low) * inverse
-    top = table.size - 1
-    j = table[0] if not b > 0 else (table[top] if b >= top else table[int(b)])
-    n = values.size
-    while j < n and values[j] <= query:
-        j += 1
-    while j > 0 and values[j - 1] > query:
+    while j > 0 and (values[j - 1] > query if right else values[j - 1] >= query):
         j -= 1
     return j
 
@@ -126,7 +113,7 @@ def arrival_slots(counts, uniform, before, day_mean, cumulative, first, last):  
         for d in range(counts.shape[1]):
             for _ in range(counts[q, d]):
                 draw = before[d] + uniform[k] * day_mean[d]
-                found = _search_right(cumulative, table, low, inverse, draw)
+                found = _search(cumulative, table, low, inverse, draw, True)
                 slot[k] = min(max(found, first[d]), last[d])
                 path[k] = q
                 k += 1

@@ -20,8 +20,7 @@ def _search_all(values, queries, right):  # type: ignore[no-untyped-def]
     table, low, inverse = kernels._bucket_table(values, 8 * values.size)
     out = np.empty(queries.size, np.int64)
     for k in range(queries.size):
-        out[k] = (kernels._search_right(values, table, low, inverse, queries[k]) if right
-                  else kernels._search(values, table, low, inverse, queries[k]))
+        out[k] = kernels._search(values, table, low, inverse, queries[k], right)
     return out
 
 
