@@ -311,8 +311,9 @@ def train_arrivals(state: UnitState, units: Collection[str] = ()) -> dict[str, A
     if choice.heldout_days:
         # The forecast's spread is that of the held-out days around what the chosen terms
         # forecast for them, not the in-sample scatter around the fitted curve (which counts a
-        # change of level the local level removes, and misses the level's own error).
-        rate = replace(rate, alpha=choice.alpha)
+        # change of level the local level removes, and misses the level's own error): day by
+        # day, and shared by the days forecast from one morning (app/stats/demand_spread.py).
+        rate = replace(rate, alpha=choice.alpha, tau2=choice.tau2)
     elective = ~emergency
     return {
         "emergency": {

@@ -128,14 +128,15 @@ def _slot_offsets(tz: ZoneInfo, as_of: pd.Timestamp, first_day: date, days: int,
 
 
 def _hourly_stream(name: str, state: UnitState, first_day: date, day_means: list[float],
-                   profile: list[float], size: float | None, stay: Any) -> ArrivalStream:
+                   profile: list[float], size: float | None, stay: Any,
+                   level_size: float | None = None) -> ArrivalStream:
     offsets = _slot_offsets(state.tz, state.as_of, first_day, len(day_means), len(profile))
     means = (np.asarray(day_means, dtype=float)[:, None]
              * np.asarray(profile, dtype=float)[None, :])
     keep = (offsets > 0) & (means > 0)
     day = np.nonzero(keep)[0]
     return ArrivalStream(name, tuple(offsets[keep].tolist()), tuple(means[keep].tolist()),
-                         tuple(day.tolist()), size, stay)
+                         tuple(day.tolist()), size, stay, level_size=level_size)
 
 
 def clock_lags(los: LosModel, state: UnitState, offsets: list[float] | tuple[float, ...],
@@ -319,7 +320,7 @@ def forecast_backdrop(state: UnitState, record: ModelRecord, *, days: int = DEFA
     rate = emergency_rate(arrivals)
     emergency = _hourly_stream("emergency", state, today, emergency_means(state, arrivals, span),
                                arrivals["emergency"]["hour_profile"], rate.size,
-                               _newcomer_stay(los, "emergency"))
+                               _newcomer_stay(los, "emergency"), rate.level_size)
     not_yet_booked = unbooked_means(arrivals["elective"], span,
                                     state.as_of.tz_convert(state.tz).to_pydatetime())
     unbooked = _hourly_stream("elective", state, today, not_yet_booked,

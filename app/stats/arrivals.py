@@ -31,16 +31,13 @@ That in-sample dispersion measures the counts around the fitted curve, not aroun
 forecast will say: a change of level or a season the chosen terms leave out inflates it (the
 forecast's local level then removes what it measured), and the error of the level itself and
 of the fitted rates is missing from it. The forecast's dispersion is therefore taken from the
-same held-out days that choose the terms (:func:`heldout_dispersion`: the NB2 dispersion of
-the held-out counts around the chosen candidate's held-out means, by maximum likelihood, kept
-only where a likelihood-ratio test against the Poisson rejects at 5%).
+same held-out days that choose the terms, around the chosen candidate's held-out means, day by
+day and shared by the days forecast from one morning (app/stats/demand_spread.py).
 
 References
 ----------
 Cameron AC, Trivedi PK (1990). Regression-based tests for overdispersion in the Poisson model.
 Journal of Econometrics 46:347-364.
-Self SG, Liang K-Y (1987). Asymptotic properties of maximum likelihood estimators and likelihood
-ratio tests under nonstandard conditions. JASA 82:605-610 (cited from memory).
 """
 
 from __future__ import annotations
@@ -56,8 +53,10 @@ import numpy as np
 import numpy.typing as npt
 from scipy import stats
 
+from app.stats.demand_spread import heldout_spread
+
 __all__ = ["DailyRateModel", "DemandChoice", "choose_demand_terms", "fit_daily_rate",
-           "heldout_dispersion", "hourly_profile", "level_multiplier"]
+           "hourly_profile", "level_multiplier"]
 
 # The annual pair is tried (as a candidate on held-out weeks) from one full cycle of history
 # on; below it cannot be estimated. Without such a comparison it is fitted only from two full
@@ -73,15 +72,9 @@ LEVEL_PRIOR_DAYS = 7.0
 VALIDATION_ORIGINS = 13
 VALIDATION_HORIZON = 7
 OVERDISPERSION_LEVEL = 0.05
-# The held-out dispersion's likelihood-ratio test against the Poisson: alpha = 0 lies on the
-# boundary, so the statistic is a 50:50 mixture of chi2(0) and chi2(1) under the Poisson (Self &
-# Liang 1987) and its 5% critical value is chi2(1)'s 90% quantile, 2.7055.
-HELDOUT_LR_CRITICAL = float(stats.chi2.ppf(1 - 2 * OVERDISPERSION_LEVEL, df=1))
 # Fewer held-out days than this keep the in-sample dispersion (four weekly origins). Common
 # practice, no source.
 MIN_HELDOUT_DAYS = 28
-# Largest NB2 dispersion searched (a day's rate with a coefficient of variation of 3).
-MAX_ALPHA = 9.0
 # Days open to admissions for less than this share carry almost no information on the demand
 # (their count is a small slice of it); they are left out of the fit. Common practice, no source.
 MIN_EXPOSURE = 0.05
@@ -120,6 +113,9 @@ class DailyRateModel:
         Mean share of the fitted days open to admissions (1 without exposures).
     level_half_life : float or None
         Half-life in days of the local level applied at forecast time (None: no local level).
+    tau2 : float or None
+        Variance of a multiplier shared by all the days of one forecast (mean 1; the level's
+        own error, app/stats/demand_spread.py); None: the days' errors are independent.
     """
 
     coefficients: tuple[float, ...]
@@ -130,6 +126,7 @@ class DailyRateModel:
     mean_count: float = field(default=0.0)
     exposure_mean: float = field(default=1.0)
     level_half_life: float | None = field(default=None)
+    tau2: float | None = field(default=None)
 
     def mean(self, days: Sequence[date]) -> npt.NDArray[np.float64]:
         """Expected count on each of ``days``."""
@@ -142,11 +139,17 @@ class DailyRateModel:
         """Negative binomial size (1/alpha), None for a Poisson."""
         return None if self.alpha is None else 1.0 / self.alpha
 
+    @property
+    def level_size(self) -> float | None:
+        """Gamma size of the multiplier shared by a forecast's days (1/tau2), None if none."""
+        return None if self.tau2 is None else 1.0 / self.tau2
+
     def to_dict(self) -> dict[str, Any]:
         return {"coefficients": list(self.coefficients), "seasonal": self.seasonal,
                 "alpha": self.alpha, "n_days": self.n_days,
                 "overdispersion_p": self.overdispersion_p, "mean_count": self.mean_count,
-                "exposure_mean": self.exposure_mean, "level_half_life": self.level_half_life}
+                "exposure_mean": self.exposure_mean, "level_half_life": self.level_half_life,
+                "tau2": self.tau2}
 
     @classmethod
     def from_dict(cls, data: Mapping[str, Any]) -> DailyRateModel:
@@ -157,7 +160,8 @@ class DailyRateModel:
                    mean_count=float(data.get("mean_count", 0.0)),
                    exposure_mean=float(data.get("exposure_mean", 1.0)),
                    level_half_life=(None if data.get("level_half_life") is None
-                                    else float(data["level_half_life"])))
+                                    else float(data["level_half_life"])),
+                   tau2=None if data.get("tau2") is None else float(data["tau2"]))
 
 
 def _checked(days: Sequence[date], counts: npt.ArrayLike, exposure: npt.ArrayLike | None
@@ -292,56 +296,20 @@ class DemandChoice:
     level_half_life: float | None
     scores: tuple[tuple[bool, float | None, float], ...]
     n_origins: int
-    # NB2 dispersion of the held-out days around the chosen candidate's held-out means
-    # (:func:`heldout_dispersion`; None: Poisson), and the days it was measured on (0: not
-    # measured, the in-sample dispersion stands).
+    # The spread of the held-out days around the chosen candidate's held-out means
+    # (app/stats/demand_spread.py): NB2 dispersion day by day (None: none) and the variance of
+    # a multiplier shared by the days forecast from one morning (None: none); and the days
+    # they were measured on (0: not measured, the in-sample dispersion stands).
     alpha: float | None = None
     heldout_days: int = 0
+    tau2: float | None = None
 
     def to_dict(self) -> dict[str, Any]:
         return {"seasonal": self.seasonal, "level_half_life": self.level_half_life,
-                "n_origins": self.n_origins, "alpha": self.alpha,
+                "n_origins": self.n_origins, "alpha": self.alpha, "tau2": self.tau2,
                 "heldout_days": self.heldout_days,
                 "scores": [{"seasonal": s, "level_half_life": h, "log_score": v}
                            for s, h, v in self.scores]}
-
-
-def _nb2_loglike(alpha: float, y: npt.NDArray[np.float64], mu: npt.NDArray[np.float64]
-                 ) -> float:
-    if alpha <= 0:
-        return float(stats.poisson.logpmf(y, mu).sum())
-    size = 1.0 / alpha
-    return float(stats.nbinom.logpmf(y, size, size / (size + mu)).sum())
-
-
-def heldout_dispersion(observed: npt.ArrayLike, means: npt.ArrayLike, *,
-                       critical: float = HELDOUT_LR_CRITICAL) -> tuple[float | None, float]:
-    """The NB2 dispersion of counts around given means (the forecast's, on held-out days).
-
-    The means are fixed (only alpha is estimated): alpha maximises the negative binomial
-    log-likelihood sum log NB(y_i; mu_i, size 1/alpha) on [0, ``MAX_ALPHA``]. A Poisson
-    (alpha 0) is kept unless twice the log-likelihood gain exceeds ``critical``.
-
-    Returns
-    -------
-    (alpha or None, likelihood-ratio statistic)
-    """
-    from scipy import optimize
-
-    y = np.asarray(observed, dtype=float)
-    mu = np.asarray(means, dtype=float)
-    if y.shape != mu.shape or y.ndim != 1 or np.any(mu <= 0):
-        raise ValueError("observed, means: need the same 1-D shape and means > 0")
-    if y.size == 0:
-        return None, 0.0
-    poisson = _nb2_loglike(0.0, y, mu)
-    # The log-likelihood in log alpha: a bounded search, then the better of it and the edges.
-    found = optimize.minimize_scalar(lambda t: -_nb2_loglike(math.exp(t), y, mu),
-                                     bounds=(math.log(1e-4), math.log(MAX_ALPHA)),
-                                     method="bounded", options={"xatol": 1e-6})
-    alpha = float(math.exp(found.x))
-    statistic = max(0.0, 2.0 * (_nb2_loglike(alpha, y, mu) - poisson))
-    return (alpha if statistic > critical else None), statistic
 
 
 def _poisson_means(days: Sequence[date], y: npt.NDArray[np.float64],
@@ -379,8 +347,8 @@ def choose_demand_terms(days: Sequence[date], counts: npt.ArrayLike,
     the half-lives in the order given) whose mean score is within one standard error of the
     best's is kept (the one-standard-error rule, below). The seasonal candidate needs
     ``SEASON_MIN_DAYS`` of history before every origin. The chosen candidate's held-out days
-    then give the forecast's dispersion (:func:`heldout_dispersion`), when there are
-    ``MIN_HELDOUT_DAYS``.
+    then give the forecast's spread (:func:`app.stats.demand_spread.heldout_spread`), when
+    there are ``MIN_HELDOUT_DAYS``.
 
     Parameters
     ----------
@@ -406,8 +374,8 @@ def choose_demand_terms(days: Sequence[date], counts: npt.ArrayLike,
                   for h in half_lives]
     per_day: dict[tuple[bool, float | None], list[float]] = {c: [] for c in candidates}
     # Each candidate's held-out means and counts, for the chosen one's dispersion.
-    heldout: dict[tuple[bool, float | None], tuple[list[float], list[float]]] = {
-        c: ([], []) for c in candidates}
+    heldout: dict[tuple[bool, float | None], tuple[list[float], list[float], list[int]]] = {
+        c: ([], [], []) for c in candidates}
     for k in range(n_origins, 0, -1):
         cut = n - k * horizon
         ahead = slice(cut, cut + horizon)
@@ -427,6 +395,7 @@ def choose_demand_terms(days: Sequence[date], counts: npt.ArrayLike,
                 observed = y[ahead][test]
                 heldout[(seasonal, h)][0].extend(float(v) for v in mu)
                 heldout[(seasonal, h)][1].extend(float(v) for v in observed)
+                heldout[(seasonal, h)][2].extend([k] * observed.size)
                 if alpha is None:
                     log_p = stats.poisson.logpmf(observed, mu)
                 else:
@@ -452,9 +421,10 @@ def choose_demand_terms(days: Sequence[date], counts: npt.ArrayLike,
     forecast_means = np.asarray(heldout[chosen][0], dtype=float)
     if forecast_means.size < MIN_HELDOUT_DAYS:
         return DemandChoice(chosen[0], chosen[1], scores, n_origins)
-    alpha, _ = heldout_dispersion(np.asarray(heldout[chosen][1], dtype=float), forecast_means)
-    return DemandChoice(chosen[0], chosen[1], scores, n_origins, alpha,
-                        int(forecast_means.size))
+    spread = heldout_spread(np.asarray(heldout[chosen][1], dtype=float), forecast_means,
+                            np.asarray(heldout[chosen][2]))
+    return DemandChoice(chosen[0], chosen[1], scores, n_origins, spread.alpha,
+                        int(forecast_means.size), spread.tau2)
 
 
 def hourly_profile(hours: npt.ArrayLike, *, prior: float = 1.0) -> npt.NDArray[np.float64]:

@@ -278,7 +278,8 @@ def _arrivals(stream: Any, last: float, n_paths: int, rng: np.random.Generator
     """One stream's arrivals before ``last`` on every path: the slots' instants, and each
     arrival's slot and path.
     A day's count is Poisson (given the day's gamma-distributed rate for a negative binomial
-    stream) and its arrivals fall in the day's slots in proportion to their means."""
+    stream, times the path's one gamma multiplier for a stream with a shared level) and its
+    arrivals fall in the day's slots in proportion to their means."""
     slot_at = np.asarray(stream.slot_at, dtype=float)
     keep = slot_at < last
     slot_at = slot_at[keep]
@@ -293,6 +294,8 @@ def _arrivals(stream: Any, last: float, n_paths: int, rng: np.random.Generator
     rate: FloatArray = np.broadcast_to(day_mean, (n_paths, days.size)).astype(float)
     if stream.size is not None:
         rate = rate * rng.gamma(stream.size, 1.0 / stream.size, size=(n_paths, days.size))
+    if stream.level_size is not None:  # one multiplier per path for all the stream's days
+        rate = rate * rng.gamma(stream.level_size, 1.0 / stream.level_size, size=(n_paths, 1))
     n = rng.poisson(rate)
     total = int(n.sum())
     if total == 0:

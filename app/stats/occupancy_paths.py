@@ -153,12 +153,14 @@ def _stream_arrivals(stream: ArrivalStream, h: FloatArray, n_paths: int,
     # sf there (the inverse transform): sf once per slot and instant, no stay sampled.
     survival = _sf_once(stream.stay, np.maximum(lags, 0.0)) if at.size else lags
     paths, times, present = [], [], []
+    shared = (np.ones(n_paths) if stream.level_size is None
+              else rng.gamma(stream.level_size, 1.0 / stream.level_size, size=n_paths))
     for d in np.unique(day):
         slots = np.flatnonzero(day == d)
         day_mean = mean[slots].sum()
         if day_mean <= 0:
             continue
-        rate = np.full(n_paths, day_mean)
+        rate = day_mean * shared
         if stream.size is not None:
             rate = rate * rng.gamma(stream.size, 1.0 / stream.size, size=n_paths)
         n = rng.poisson(rate)

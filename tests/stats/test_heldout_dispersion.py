@@ -1,5 +1,5 @@
 """The forecast's dispersion of daily emergency counts, measured on held-out days around the
-means the chosen terms forecast for them (app.stats.arrivals.heldout_dispersion).
+means the chosen terms forecast for them (app.stats.demand_spread.heldout_dispersion).
 
 Outside references: statsmodels' negative binomial (NB2) maximum likelihood, the true
 dispersion of simulated counts, and the size of the boundary likelihood-ratio test (a 50:50
@@ -13,12 +13,8 @@ from datetime import date, timedelta
 import numpy as np
 import pytest
 
-from app.stats.arrivals import (
-    HELDOUT_LR_CRITICAL,
-    choose_demand_terms,
-    fit_daily_rate,
-    heldout_dispersion,
-)
+from app.stats.arrivals import choose_demand_terms, fit_daily_rate
+from app.stats.demand_spread import HELDOUT_LR_CRITICAL, heldout_dispersion
 
 
 def test_alpha_matches_statsmodels_negative_binomial() -> None:

@@ -196,6 +196,8 @@ def test_the_page_starts_a_real_training_process_and_shows_it(
     assert "Emergency demand: which patterns the forecast uses" in shown
     assert "Chosen by replaying the last 13 weeks" in shown
     assert "is measured on the same 91 replayed days" in shown  # the held-out dispersion
+    # ... and whether the days forecast from one morning miss together (shared variance).
+    assert "forecast from one morning" in shown and "miss together" in shown
     done_page = TestClient(app).get("/units/KV-CRIT/training", follow_redirects=False)
     assert done_page.status_code == 303  # signed out: sent to sign in, nothing shown
     db.release_engine(url)
