@@ -193,19 +193,23 @@ class StayGroups:
 
     def with_clock_fits(self, x: npt.ArrayLike, clock_durations: npt.ArrayLike,
                         observed: npt.ArrayLike, *, max_phases: int = 10, n_starts: int = 2,
-                        rng: int = 0) -> StayGroups:
+                        rng: int = 0, entry: npt.ArrayLike | None = None) -> StayGroups:
         """The groups with each one's Coxian also fitted on its stays' durations measured on
         the discharge clock (``clock_durations``, operational days; the stays the groups were
-        fitted on, in the same order as ``x``)."""
+        fitted on, in the same order as ``x``); ``entry``: each stay's delayed entry on the
+        same clock (as in :func:`fit_stay_groups`)."""
         days = round_up_to_hours(clock_durations)
         ended = np.asarray(observed, dtype=bool)
+        late = (np.zeros(days.size) if entry is None
+                else np.clip(np.asarray(entry, dtype=float), 0.0, None))
+        late = np.minimum(np.floor(np.round(late * 24.0, 6)) / 24.0, days)
         node = self.group_of(x)
         out = []
         for g in self.groups:
             mask = node == g.node
             if not (mask & ended).any():
                 mask = np.ones(days.size, dtype=bool)  # as the calendar fit: the unit's curve
-            fit = select_coxian(**_hour_bins(days[mask], ended[mask], np.zeros(int(mask.sum()))),
+            fit = select_coxian(**_hour_bins(days[mask], ended[mask], late[mask]),
                                 max_phases=max_phases, n_starts=n_starts, rng=rng)
             out.append(dataclasses.replace(g, clock_coxian=fit))
         return StayGroups(tree=self.tree, groups=tuple(out))
@@ -310,7 +314,10 @@ def fit_stay_groups(x: npt.ArrayLike, durations: npt.ArrayLike, observed: npt.Ar
     rules = TreeRules.from_sklearn(tree.tree_, features, value=weights)
     node = rules.apply(matrix)
     groups = []
-    type_totals = {k: float(np.sum(kinds == k)) for k in sorted(set(kinds))}
+    # Shares of each admission type by group (for stays still to come) count the stays seen
+    # from admission: those admitted before the extract are there for having stayed long.
+    counted = seen_from_admission | ~np.isin(kinds, kinds[seen_from_admission])
+    type_totals = {k: float(np.sum(counted & (kinds == k))) for k in sorted(set(kinds))}
     for leaf in rules.leaves:
         mask = node == leaf
         if not mask.any():
@@ -325,7 +332,8 @@ def fit_stay_groups(x: npt.ArrayLike, durations: npt.ArrayLike, observed: npt.Ar
         groups.append(StayGroup(
             node=int(leaf), rule=rules.rule(int(leaf)), n_stays=float(mask.sum()),
             n_ended=float(leaf_ended.sum()), longest_days=float(leaf_days.max()),
-            share={k: float(np.sum(mask & (kinds == k)) / v) for k, v in type_totals.items()},
+            share={k: float(np.sum(mask & counted & (kinds == k)) / v)
+                   for k, v in type_totals.items()},
             km=_leaf_curve(leaf_days, leaf_ended, leaf_entry),
             coxian=selection))
     return StayGroups(tree=rules, groups=tuple(groups))

@@ -51,6 +51,6 @@ def test_training_chooses_the_tree_size_when_no_stay_ends_within_a_day() -> None
     landmarks = build_landmarks(state, names=[])
     design = make_design(landmarks, interval_rows(landmarks, state.census_time, state.tz,
                                                   rng=np.random.default_rng(0)), [])
-    _, results = _select_groups(design, state.stays, int(as_of.value))
+    _, results = _select_groups(design, state.stays, int(as_of.value), None)
     scores = [r["val_ibs"] for r in results]
     assert all(np.isfinite(scores)) and all(0 < v < 0.25 for v in scores), scores

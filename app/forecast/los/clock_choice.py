@@ -40,22 +40,26 @@ def _log_score(p_in: FloatArray, present: np.ndarray, seen: np.ndarray) -> float
 
 def choose_newcomer_clock(design: Design, stays: pd.DataFrame, cutoff_ns: int,
                           params: Mapping[str, Any], seed: int, profile: DischargeProfile,
-                          tz: ZoneInfo, census_time: time) -> dict[str, Any]:
-    """``{"chosen": bool, "log_score_calendar", "log_score_clock", "stays", ...}``."""
+                          tz: ZoneInfo, census_time: time, extract_ns: int | None = None
+                          ) -> dict[str, Any]:
+    """``{"chosen": bool, "log_score_calendar", "log_score_clock", "stays", ...}``.
+    ``extract_ns``: when the extract began (stays admitted before it enter the fits late and
+    are not scored)."""
     from app.forecast.newcomer_clock import stay_durations
 
     admitted = utc_ns(stays["admitted_at"])
     val_days = min(90.0, 0.25 * (cutoff_ns - int(admitted.min())) / NS_PER_DAY)
     v_ns = int(cutoff_ns - val_days * NS_PER_DAY)
-    later = _stays_at(stays, cutoff_ns)
-    new = admitted[later.index] > v_ns
+    later = _stays_at(stays, cutoff_ns, extract_ns)
+    new = (admitted[later.index] > v_ns) & (later.entry == 0)
     out: dict[str, Any] = {"chosen": False, "stays": int(new.sum()),
                            "scored_from": pd.Timestamp(v_ns, tz="UTC").isoformat(),
                            "log_score_calendar": None, "log_score_clock": None}
     if new.sum() < MIN_SCORED_STAYS or not later.ended[new].any():
         return out
     try:
-        groups = _fit_groups(design, stays, v_ns, params, seed, clock=(profile, tz))
+        groups = _fit_groups(design, stays, v_ns, params, seed, extract_ns,
+                             clock=(profile, tz))
     except ValueError:  # no stay ended before the validation start
         return out
     index, days = later.index[new], later.days[new]

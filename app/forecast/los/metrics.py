@@ -22,6 +22,7 @@ from app.forecast.los.design import _row_matrix
 from app.forecast.los.model import LosModel, _Curves, _landmark_curves
 from app.forecast.los.rows import IntervalRows, Landmarks, _interval_weekday, _rows_weekday
 from app.forecast.los.selection import _boosted, _ensemble_x, _one_thread, _stays_at
+from app.stats.kaplan_meier import KaplanMeier
 from app.stats.stay_groups import round_up_to_hours
 
 EVAL_DAYS = np.arange(1.0, 15.0)  # integrated Brier score over days 1..14
@@ -154,6 +155,18 @@ def _km_summaries(km: Any, days_in: FloatArray) -> tuple[FloatArray, FloatArray,
     return surv_days, rmst, mean_rem
 
 
+def baseline_km(train_lm: Landmarks) -> KaplanMeier:
+    """The no-covariate baseline's curve: Kaplan-Meier of whole stays as known at the training
+    cut-off, conditioned like the groups: a stay admitted before the extract began enters at
+    its days in the unit then (delayed entry), rounded down to the hour grid."""
+    from app.stats.kaplan_meier import kaplan_meier
+
+    table = _stays_at(train_lm.stays, int(train_lm.end_ns.max()), train_lm.extract_ns)
+    shown = round_up_to_hours(table.days)
+    return kaplan_meier(shown, table.ended,
+                        entry=np.minimum(np.floor(np.round(table.entry * 24.0, 6)) / 24.0, shown))
+
+
 def _thin_rows(rows: IntervalRows, limit: int, rng: np.random.Generator) -> IntervalRows:
     """At most about ``limit`` rows, whole landmarks sampled, weights scaled up to match."""
     if rows.event.size <= limit:
@@ -168,17 +181,13 @@ def _thin_rows(rows: IntervalRows, limit: int, rng: np.random.Generator) -> Inte
 def _test_metrics(model: LosModel, train_lm: Landmarks, train_rows: IntervalRows,
                   test_lm: Landmarks, tz: ZoneInfo, ensemble: Mapping[str, Any] | None
                   ) -> dict[str, Any]:
-    from app.stats.kaplan_meier import kaplan_meier
-
     steps = HORIZON_STEPS + 1
     curves = _landmark_curves(model, test_lm, tz, steps)
     event, remaining = test_lm.ended, test_lm.remaining_days
     out: dict[str, Any] = {"landmarks": int(test_lm.size),
                            "stays": int(np.unique(test_lm.stay_index).size)}
     tree = survival_metrics(event, remaining, *_curve_summaries(curves, test_lm.at_ns))
-    cutoff_ns = int(train_lm.end_ns.max())
-    table = _stays_at(train_lm.stays, cutoff_ns)
-    km = kaplan_meier(round_up_to_hours(table.days), table.ended)
+    km = baseline_km(train_lm)
     baseline = survival_metrics(event, remaining, *_km_summaries(km, test_lm.days_in))
     out["tree"], out["km"] = tree, baseline
     if ensemble is not None:

@@ -195,6 +195,8 @@ class Landmarks:
         Discharge, or the cut-off for stays still in (censored).
     ended : ndarray of bool
         Discharged by the cut-off.
+    extract_ns : int or None
+        When the extract began (:func:`extract_start_ns`); no landmark comes before it.
     """
 
     stays: pd.DataFrame
@@ -205,6 +207,7 @@ class Landmarks:
     observed: Mapping[str, FloatArray]
     end_ns: IntArray
     ended: npt.NDArray[np.bool_]
+    extract_ns: int | None = None
 
     @property
     def size(self) -> int:
@@ -219,7 +222,8 @@ class Landmarks:
                          at_ns=self.at_ns[mask], at_local=self.at_local[mask],
                          days_in=self.days_in[mask],
                          observed={k: v[mask] for k, v in self.observed.items()},
-                         end_ns=self.end_ns[mask], ended=self.ended[mask])
+                         end_ns=self.end_ns[mask], ended=self.ended[mask],
+                         extract_ns=self.extract_ns)
 
     def censored_at(self, cutoff_ns: int) -> Landmarks:
         """The same landmarks as known at an earlier cut-off (landmarks before it only)."""
@@ -240,6 +244,34 @@ def _stay_ends(stays: pd.DataFrame, as_of_ns: int) -> tuple[IntArray, IntArray,
     return admitted, end, ended
 
 
+def extract_start_ns(stays: pd.DataFrame, as_of_ns: int, given: int | None = None
+                     ) -> int | None:
+    """When the extract's record of stays begins: ``given``, else its first discharge known
+    at ``as_of_ns`` (None when no stay has ended yet).
+
+    An extract of stays holds those discharged since some instant plus the stays then in
+    progress, so a stay admitted before its first recorded discharge is on record only
+    because it lasted into the extract (left truncation): the reading of the arrivals' window
+    (``app.forecast.arrivals._window``). Every stay on record admitted before that instant was
+    in the unit at it (none had left yet), so conditioning such a stay on being in the unit at
+    the instant is exact even when the true start came a little earlier.
+    """
+    if given is not None:
+        return int(given)
+    discharged = utc_ns(stays["discharged_at"].dropna())
+    discharged = discharged[discharged <= as_of_ns]
+    return int(discharged.min()) if discharged.size else None
+
+
+def entry_days(admitted_ns: IntArray, days: FloatArray, start_ns: int | None) -> FloatArray:
+    """Days each stay had spent in the unit when the extract began (0 for stays admitted after
+    it), at most its length ``days``: the delayed entry of a left-truncated stay."""
+    if start_ns is None:
+        return np.zeros(np.shape(days))
+    return np.clip((start_ns - np.asarray(admitted_ns, dtype=np.int64)) / NS_PER_DAY, 0.0,
+                   np.asarray(days, dtype=float))
+
+
 def observation_names(state: UnitState) -> list[str]:
     """Observation names recorded for the unit's stays, sorted."""
     if state.observations.empty:
@@ -248,24 +280,35 @@ def observation_names(state: UnitState) -> list[str]:
 
 
 def build_landmarks(state: UnitState, *, landmark_clock: time = LANDMARK_CLOCK,
-                    names: Sequence[str] | None = None) -> Landmarks:
+                    names: Sequence[str] | None = None,
+                    extract_start: int | None = None) -> Landmarks:
     """Landmarks of every stay of the state: each ``landmark_clock`` local time it was in the
-    unit, up to ``state.as_of`` (stays still in are censored there, never dropped)."""
+    unit from the extract's start (:func:`extract_start_ns`; ``extract_start`` in UTC ns if
+    given) up to ``state.as_of`` (stays still in are censored there, never dropped).
+
+    Before the extract's start only the stays that lasted into it are on record, so a landmark
+    there would see long survivors only; from the start on every stay in the unit is on
+    record, whenever admitted. A stay admitted before the start keeps its true days in the
+    unit at its later landmarks: a landmark conditions on being in the unit, which for the
+    hazard model on interval rows is exactly delayed entry.
+    """
     stays = state.stays.reset_index(drop=True)
     names = observation_names(state) if names is None else list(names)
     as_of_ns = int(utc_ns([state.as_of])[0])
     admitted, end, ended = _stay_ends(stays, as_of_ns)
+    start_ns = extract_start_ns(stays, as_of_ns, extract_start) if not stays.empty else None
     if stays.empty:
         empty = np.zeros(0, dtype=np.int64)
         return Landmarks(stays, empty, empty, np.zeros(0), np.zeros(0),
                          {k: np.zeros(0) for n in names
                           for k in (n, f"{n}_change", f"{n}_hours")}, empty,
-                         np.zeros(0, dtype=bool))
+                         np.zeros(0, dtype=bool), start_ns)
     axis = _axis_for(int(admitted.min()), as_of_ns, 1, landmark_clock, state.census_time,
                      state.tz)
     # A stay is in at landmark s when admitted <= s < end (present means discharged after s);
     # a landmark at the cut-off itself has no time at risk left.
-    first = np.searchsorted(axis.landmark_ns, admitted, side="left")
+    seen_from = admitted if start_ns is None else np.maximum(admitted, start_ns)
+    first = np.searchsorted(axis.landmark_ns, seen_from, side="left")
     last = np.searchsorted(axis.landmark_ns, end, side="left")
     counts = np.maximum(last - first, 0)
     stay_index = np.repeat(np.arange(len(stays)), counts)
@@ -278,7 +321,7 @@ def build_landmarks(state: UnitState, *, landmark_clock: time = LANDMARK_CLOCK,
     return Landmarks(stays=stays, stay_index=stay_index.astype(np.int64), at_ns=at_ns,
                      at_local=axis.landmark_local[day],
                      days_in=(at_ns - admitted[stay_index]) / NS_PER_DAY, observed=observed,
-                     end_ns=end[stay_index], ended=ended[stay_index])
+                     end_ns=end[stay_index], ended=ended[stay_index], extract_ns=start_ns)
 
 
 @dataclass(frozen=True, eq=False)

@@ -60,7 +60,8 @@ def _iso(ns: int, tz: ZoneInfo) -> str:
 
 def train_los(state: UnitState, *, test_days: float | None = None,
               landmark_clock: time = LANDMARK_CLOCK, compare: bool = True,
-              evaluate: bool = True, seed: int = 0) -> dict[str, Any]:
+              evaluate: bool = True, seed: int = 0,
+              extract_start: int | None = None) -> dict[str, Any]:
     """Train the length-of-stay model on everything known at ``state.as_of``.
 
     Holds out the last ``test_days`` (default: a quarter of the history, at most 90 days),
@@ -82,6 +83,11 @@ def train_los(state: UnitState, *, test_days: float | None = None,
         often) chooses the sizes by validation on the whole history and fits once.
     seed : int
         For the row sampling of very large histories and the Coxian random starts.
+    extract_start : int, optional
+        When the extract began (UTC ns); default its first recorded discharge
+        (``rows.extract_start_ns``). Stays admitted before it are left-truncated: their
+        landmarks start there, and the groups and the test's Kaplan-Meier baseline take them
+        from their days in the unit then (delayed entry).
 
     Returns
     -------
@@ -98,7 +104,8 @@ def train_los(state: UnitState, *, test_days: float | None = None,
     tz = state.tz
     names = observation_names(state)
     until_ns = int(utc_ns([state.as_of])[0])
-    full = build_landmarks(state, landmark_clock=landmark_clock, names=names)
+    full = build_landmarks(state, landmark_clock=landmark_clock, names=names,
+                           extract_start=extract_start)
     require_history(state.unit, int(np.unique(full.stay_index[full.ended]).size),
                     _iso(until_ns, tz))
     first_ns = int(utc_ns(state.stays["admitted_at"]).min())
@@ -126,7 +133,7 @@ def train_los(state: UnitState, *, test_days: float | None = None,
     group_params, group_grid = _select_groups(
         make_design(train_lm, interval_rows(train_lm, state.census_time, tz, rng=rng,
                                             max_rows=MAX_VALIDATION_ROWS), names),
-        state.stays, test_from)
+        state.stays, test_from, full.extract_ns)
     metrics: dict[str, Any] = {"left_out": left_out}
 
     # 2. The model as known at the test start, scored on the test period.
@@ -135,7 +142,8 @@ def train_los(state: UnitState, *, test_days: float | None = None,
         design_t = make_design(train_lm, train_rows, names)
         hazard_t = _fit_hazard(design_t, train_lm, train_rows, depth=params["max_depth"],
                                min_stays=_min_stays(params, train_lm, train_rows))
-        groups_t = _fit_groups(design_t, state.stays, test_from, group_params, seed)
+        groups_t = _fit_groups(design_t, state.stays, test_from, group_params, seed,
+                               full.extract_ns)
         model_t = LosModel(design_t, hazard_t, groups_t, state.census_time, HORIZON_STEPS)
         test_lm = _sample_landmarks(full.subset(full.at_ns >= test_from), MAX_TEST_LANDMARKS,
                                     rng)
@@ -155,8 +163,9 @@ def train_los(state: UnitState, *, test_days: float | None = None,
     hazard = _fit_hazard(design, full, rows, depth=params["max_depth"],
                          min_stays=_min_stays(params, full, rows))
     newcomer_clock = choose_newcomer_clock(design, state.stays, until_ns, group_params, seed,
-                                           hazard.profile, tz, state.census_time)
-    groups = _fit_groups(design, state.stays, until_ns, group_params, seed,
+                                           hazard.profile, tz, state.census_time,
+                                           full.extract_ns)
+    groups = _fit_groups(design, state.stays, until_ns, group_params, seed, full.extract_ns,
                          clock=(hazard.profile, tz) if newcomer_clock["chosen"] else None)
     metrics["train_seconds"] = timer.perf_counter() - clock_start
     metrics["training_rows"] = int(len(rows.event))
