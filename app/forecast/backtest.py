@@ -45,7 +45,7 @@ from app.state import UnitState, load_state
 from app.stats.kaplan_meier import kaplan_meier
 from app.stats.occupancy import ArrivalStream, BookedAdmissions, occupancy_days
 from app.stats.poisson_binomial import pmf_quantile
-from app.stats.scoring import crps_pmf, log_score, randomised_pit
+from app.stats.scoring import crps_pmf, expected_pit_coverage, log_score, randomised_pit
 from app.timeutil import census_instants_after, localize
 
 METHODS = ("morrow", "yesterday", "same_weekday", "mean_stay", "one_distribution",
@@ -275,7 +275,7 @@ def _census_time(session: Session, unit: str) -> time:
     return parse_clock(found.census_time)
 
 
-def _scores(s: Scored, rows: np.ndarray, rng: np.random.Generator) -> dict[str, float]:
+def _scores(s: Scored, rows: np.ndarray) -> dict[str, float]:
     pmfs = [s.pmf[i] for i in rows]
     y = np.array([s.outcome[i] for i in rows])
     width = max(max(p.size for p in pmfs), int(y.max()) + 1)
@@ -283,7 +283,6 @@ def _scores(s: Scored, rows: np.ndarray, rng: np.random.Generator) -> dict[str, 
     for j, p in enumerate(pmfs):
         matrix[j, : p.size] = p
     matrix /= matrix.sum(axis=1, keepdims=True)
-    pit = np.asarray(randomised_pit(matrix, y, rng=rng))
     q = np.array([pmf_quantile(p, [0.025, 0.1, 0.5, 0.9, 0.975]) for p in matrix])
     return {
         "n": int(len(rows)),
@@ -292,8 +291,11 @@ def _scores(s: Scored, rows: np.ndarray, rng: np.random.Generator) -> dict[str, 
         "coverage_80": float(np.mean((q[:, 1] <= y) & (y <= q[:, 3]))),
         "coverage_95": float(np.mean((q[:, 0] <= y) & (y <= q[:, 4]))),
         "log_score": float(np.mean(log_score(matrix, y))),
-        "pit_80": float(np.mean((pit >= 0.1) & (pit <= 0.9))),
-        "pit_95": float(np.mean((pit >= 0.025) & (pit <= 0.975))),
+        # The randomised PIT's shares averaged over its randomisation: the same target without
+        # the noise of one set of draws (over one stress unit's 882 forecasts, 500 sets of
+        # draws gave PIT80 shares 0.713-0.763, standard deviation 0.008).
+        "pit_80": expected_pit_coverage(matrix, y, 0.1, 0.9),
+        "pit_95": expected_pit_coverage(matrix, y, 0.025, 0.975),
     }
 
 
@@ -305,9 +307,9 @@ def summarise(unit: str, start: date, end: date, days: int,
     for method, s in scored.items():
         horizons = np.asarray(s.horizon)
         table[method] = {
-            "by_horizon": [_scores(s, np.flatnonzero(horizons == k), rng)
+            "by_horizon": [_scores(s, np.flatnonzero(horizons == k))
                            for k in range(1, days + 1)],
-            "all": _scores(s, np.arange(horizons.size), rng),
+            "all": _scores(s, np.arange(horizons.size)),
         }
         width = max(max(p.size for p in s.pmf), max(s.outcome) + 1)
         matrix = np.zeros((len(s.pmf), width))

@@ -14,6 +14,7 @@ from app.stats.scoring import (
     brier_score,
     central_interval,
     crps_pmf,
+    expected_pit_coverage,
     interval_coverage,
     log_score,
     pit_coverage,
@@ -125,6 +126,27 @@ def test_pit_detects_an_overconfident_forecast() -> None:
     u = randomised_pit(narrow, ys, rng=2)
     assert stats.kstest(u, "uniform").pvalue < 0.01
     assert pit_coverage(u, 0.1, 0.9) < 0.8 - 4 * math.sqrt(0.8 * 0.2 / n)
+
+
+def test_expected_pit_coverage_is_the_mean_over_randomisations() -> None:
+    # The randomised PIT's definition (Czado, Gneiting & Held 2009) drawn 400 times per
+    # forecast: the mean indicator is the expected share, to Monte Carlo error.
+    n = 300
+    table, ys, means = _forecasts_and_outcomes(n, seed=3)
+    unique, which = np.unique(means, return_inverse=True)
+    narrow = _padded([poisson_pmf(m) for m in unique])[which]
+    rng = np.random.default_rng(4)
+    for pmfs in (table, narrow):
+        for lower, upper in ((0.1, 0.9), (0.025, 0.975)):
+            draws = np.mean([pit_coverage(randomised_pit(pmfs, ys, rng=rng), lower, upper)
+                             for _ in range(400)])
+            # 400 x 300 indicators: standard error below 0.5 / sqrt(120000) = 0.0015.
+            assert expected_pit_coverage(pmfs, ys, lower, upper) == pytest.approx(draws,
+                                                                                  abs=0.006)
+    # A forecast certain of the outcome: its PIT is uniform on [0, 1], 0.8 of it in the band;
+    # one certain of a larger value: its PIT is 0, below the band.
+    assert expected_pit_coverage(np.array([[1.0, 0.0]]), np.array([0])) == pytest.approx(0.8)
+    assert expected_pit_coverage(np.array([[0.0, 1.0]]), np.array([0])) == 0.0
 
 
 def test_literal_interval_covers_more_than_its_level() -> None:

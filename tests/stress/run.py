@@ -106,7 +106,8 @@ def table(results: dict[str, dict[str, Any]]) -> str:
         lines.append("")
     lines.append("CRPS: mean ranked probability score in beds (lower is better); ratio: Morrow / "
                  "best baseline at that horizon; pit80, pit95: Morrow's share of randomised PIT "
-                 "in [0.1, 0.9] (target 0.80) and [0.025, 0.975] (target 0.95).")
+                 "in [0.1, 0.9] (target 0.80) and [0.025, 0.975] (target 0.95), averaged over "
+                 "the randomisation.")
     return "\n".join(lines)
 
 
