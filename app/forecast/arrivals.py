@@ -456,33 +456,42 @@ def recent_days_read(arrivals: Mapping[str, Any]) -> float:
 
 def emergency_means(state: UnitState, arrivals: Mapping[str, Any], span: list[date]
                     ) -> list[float]:
-    """:func:`_emergency_means`, kept with the state for these arrivals (a unit's own
+    """Expected emergency demand on each local day of ``span`` (:func:`emergency_demand`)."""
+    return emergency_demand(state, arrivals, span)[0]
+
+
+def emergency_demand(state: UnitState, arrivals: Mapping[str, Any], span: list[date]
+                     ) -> tuple[list[float], float | None]:
+    """:func:`_emergency_demand`, kept with the state for these arrivals (a unit's own
     forecast and the units it passes patients on to ask the same)."""
-    key = ("emergency_means", id(arrivals), tuple(span))
+    key = ("emergency_demand", id(arrivals), tuple(span))
     found = state.memo.get(key)
     if found is not None and found[0] is arrivals:
-        return list(found[1])
-    means = _emergency_means(state, arrivals, span)
-    state.memo[key] = (arrivals, tuple(means))
-    return means
+        return list(found[1]), found[2]
+    means, level_size = _emergency_demand(state, arrivals, span)
+    state.memo[key] = (arrivals, tuple(means), level_size)
+    return means, level_size
 
 
-def _emergency_means(state: UnitState, arrivals: Mapping[str, Any], span: list[date]
-                     ) -> list[float]:
+def _emergency_demand(state: UnitState, arrivals: Mapping[str, Any], span: list[date]
+                      ) -> tuple[list[float], float | None]:
     """Expected emergency demand on each local day of ``span`` (the first is today), as of
-    ``state.as_of``.
+    ``state.as_of``, and the gamma size of the multiplier its days share (None: none).
 
     The trained daily rate, times the local level (the admissions of the recent past against
     what the rate expected on their open share of each day, up to yesterday: it follows the
-    demand since training), and for today also the admissions already seen since midnight
-    where the counts are overdispersed: under the negative binomial a day's rate is
-    gamma-distributed, and after n admissions where f of the day's expected demand has passed
-    its posterior mean is mu (r + n) / (r + f mu), with r the size (the conjugate update).
+    demand since training), updated by the admissions already seen since midnight (n, where
+    f of today's expected demand mu has passed) where the model has a gamma multiplier to
+    update (the conjugate update of a gamma with size r: posterior mean (r + n) / (r + f mu),
+    size r + n). Under the negative binomial, today's own rate is updated; with only a
+    multiplier shared by the forecast's days, the shared one, which moves every day's mean
+    and narrows what is left of its spread. With both, today's own rate (the day's evidence
+    is mostly about the day).
     """
     rate = emergency_rate(arrivals)
     means = rate.mean(span)
     if not span:
-        return []
+        return [], rate.level_size
     today = span[0]
     stays = state.stays
     emergency_rows = ((stays["admission_type"] == "emergency")
@@ -502,13 +511,20 @@ def _emergency_means(state: UnitState, arrivals: Mapping[str, Any], span: list[d
                                         recording_lag(arrivals))
                 expected = expected * by_day
             means = means * level_multiplier(counts, expected, rate.level_half_life)
-    if rate.size is not None:
+    level_size = rate.level_size
+    updated = rate.size if rate.size is not None else level_size
+    if updated is not None:
         seen = int((admitted.dt.date == today).sum())
         passed = _demand_passed_today(state, today, excess_beds(arrivals), profile,
                                       recording_lag(arrivals))
         mu = float(means[0])
-        means[0] = mu * (rate.size + seen) / (rate.size + passed * mu)
-    return [float(m) for m in means]
+        factor = (updated + seen) / (updated + passed * mu)
+        if rate.size is not None:
+            means[0] = mu * factor
+        else:
+            means = means * factor
+            level_size = updated + seen
+    return [float(m) for m in means], level_size
 
 
 def _demand_passed_today(state: UnitState, today: date, excess: int | None,

@@ -21,7 +21,7 @@ from sqlalchemy.orm import Session
 
 from app.forecast.arrivals import (
     MAX_LEAD,
-    emergency_means,
+    emergency_demand,
     emergency_rate,
     excess_beds,
     recent_days_read,
@@ -318,9 +318,10 @@ def forecast_backdrop(state: UnitState, record: ModelRecord, *, days: int = DEFA
     today = state.as_of.tz_convert(state.tz).date()
     span = [today + timedelta(days=d) for d in range((local_days[-1] - today).days + 1)]
     rate = emergency_rate(arrivals)
-    emergency = _hourly_stream("emergency", state, today, emergency_means(state, arrivals, span),
+    means, level_size = emergency_demand(state, arrivals, span)
+    emergency = _hourly_stream("emergency", state, today, means,
                                arrivals["emergency"]["hour_profile"], rate.size,
-                               _newcomer_stay(los, "emergency"), rate.level_size)
+                               _newcomer_stay(los, "emergency"), level_size)
     not_yet_booked = unbooked_means(arrivals["elective"], span,
                                     state.as_of.tz_convert(state.tz).to_pydatetime())
     unbooked = _hourly_stream("elective", state, today, not_yet_booked,

@@ -2,7 +2,8 @@
 local level and the forecast's expected admissions follow it, also when the forecast reads
 the store (which loads only the recent stays the level needs); under overdispersion today's
 expectation is updated by the admissions already seen (the gamma-Poisson posterior, checked by
-numerical integration with scipy). Invented unit, simulated admissions."""
+numerical integration with scipy), and so is the multiplier the forecast's days share where the
+model has one. Invented unit, simulated admissions."""
 
 from __future__ import annotations
 
@@ -13,7 +14,12 @@ import pandas as pd
 import pytest
 from scipy import integrate, stats
 
-from app.forecast.arrivals import emergency_means, emergency_rate, train_arrivals
+from app.forecast.arrivals import (
+    emergency_demand,
+    emergency_means,
+    emergency_rate,
+    train_arrivals,
+)
 from app.forecast.service import forecast_state
 from app.ingest import import_file
 from app.state import load_state
@@ -135,3 +141,42 @@ def test_todays_admissions_update_the_day_under_overdispersion(zone: str) -> Non
     denominator = integrate.quad(joint, 0, top, args=(0,), limit=200)[0]
     assert means[0] == pytest.approx(prior_mean * numerator / denominator, rel=1e-6)
     assert means[0] > prior_mean  # more seen than expected by noon: more expected after
+
+
+def test_todays_admissions_update_the_multiplier_the_forecasts_days_share() -> None:
+    # A model whose days share one gamma multiplier (variance tau2, size r = 1/tau2) and are
+    # Poisson given it: the admissions seen by noon update that multiplier for every day of the
+    # forecast, and what is left of its spread (size r + seen).
+    rng = np.random.default_rng(5)
+    days = 300
+    daily = rng.poisson(6.0, days)
+    as_of = START + pd.Timedelta(days=days - 1, hours=12)
+    busy = daily.copy()
+    busy[-1] = 14
+    state = _state(busy, as_of, 4)
+    arrivals = train_arrivals(_state(daily, START + pd.Timedelta(days=days - 8), 4))
+    arrivals["emergency"]["rate"].update(alpha=None, tau2=0.1, level_half_life=None)
+    rate = emergency_rate(arrivals)
+    assert rate.size is None and rate.level_size == pytest.approx(10.0)
+    today = as_of.date()
+    span = [today, today + timedelta(days=1), today + timedelta(days=2)]
+    seen = int((state.stays["admitted_at"].dt.date == today).sum())
+    means, size = emergency_demand(state, arrivals, span)
+    prior = rate.mean(span)
+    passed = float(np.asarray(arrivals["emergency"]["hour_profile"])[:12].sum())
+    r = rate.level_size
+
+    # Posterior of the shared multiplier L ~ Gamma(r, 1/r) after `seen` admissions with Poisson
+    # mean passed * prior[0] * L: its mean and variance by numerical integration (scipy).
+    def joint(g: float, k: int) -> float:
+        return (stats.gamma.pdf(g, r, scale=1 / r)
+                * stats.poisson.pmf(seen, passed * prior[0] * g) * g ** k)
+
+    moments = [integrate.quad(joint, 0, 20.0, args=(k,), limit=200)[0] for k in range(3)]
+    mean = moments[1] / moments[0]
+    variance = moments[2] / moments[0] - mean**2
+    assert np.asarray(means) == pytest.approx(prior * mean, rel=1e-6)
+    assert mean > 1.0  # 14 by noon against about 3 expected
+    # The size left: the multiplier is mean x Gamma(size, 1/size), so variance = mean^2 / size.
+    assert size == pytest.approx(mean**2 / variance, rel=1e-6)
+    assert emergency_means(state, arrivals, span) == means

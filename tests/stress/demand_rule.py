@@ -10,7 +10,7 @@ default). For each series the history (365-730 days) is fitted as training does 
 fit's dispersion, the candidates replayed on the last 13 weeks by
 ``app.stats.arrivals.replay_candidates``), each rule picks its terms, and the next 8 weeks are
 forecast from weekly origins with the local level computed on all counts before each origin
-(as ``app.forecast.arrivals._emergency_means``), scored by the Poisson and NB2 log score per
+(as ``app.forecast.arrivals._emergency_demand``), scored by the Poisson and NB2 log score per
 day and the error of weekly totals. The table goes to standard output.
 """
 
