@@ -73,7 +73,7 @@ def test_shared_log_likelihoods_match_numerical_integration() -> None:
     y = np.array([3.0, 0.0, 5.0, 2.0, 4.0])
     mu = np.array([2.0, 1.5, 3.0, 2.5, 2.2])
     groups = [np.arange(5)]
-    for alpha, tau2 in ((None, 0.3), (0.4, 0.3), (0.2, 0.05)):
+    for alpha, tau2 in ((None, 0.3), (0.4, 0.3), (0.2, 0.05), (2.0, 0.8)):
         law = stats.gamma(1 / tau2, scale=tau2)
 
         def density(s: float, alpha: float | None = alpha, law: object = law) -> float:
