@@ -512,18 +512,18 @@ def _emergency_demand(state: UnitState, arrivals: Mapping[str, Any], span: list[
                 expected = expected * by_day
             means = means * level_multiplier(counts, expected, rate.level_half_life)
     level_size = rate.level_size
-    updated = rate.size if rate.size is not None else level_size
-    if updated is not None:
+    r = rate.size if rate.size is not None else level_size  # the gamma size updated
+    if r is not None:
         seen = int((admitted.dt.date == today).sum())
         passed = _demand_passed_today(state, today, excess_beds(arrivals), profile,
                                       recording_lag(arrivals))
         mu = float(means[0])
-        factor = (updated + seen) / (updated + passed * mu)
+        factor = (r + seen) / (r + passed * mu)
         if rate.size is not None:
             means[0] = mu * factor
         else:
             means = means * factor
-            level_size = updated + seen
+            level_size = r + seen
     return [float(m) for m in means], level_size
 
 

@@ -246,15 +246,15 @@ def _stream_pmf(presence_k: FloatArray, size: float | None,
                 level_size: float | None = None) -> FloatArray:
     """Arrivals still present at one instant: the days' counts (Poisson, or NB2 of size
     ``size``) summed, mixed over the shared multiplier of size ``level_size`` if any."""
-    if level_size is None:
-        if size is None:
-            return poisson_pmf(float(presence_k.sum()))
-        parts = [negative_binomial_pmf(float(m), size) for m in presence_k if m > 0]
-        return convolve_pmfs(*parts) if parts else np.ones(1)
     total = float(presence_k.sum())
     if size is None:
-        # A Poisson whose rate has one gamma multiplier is negative binomial, exactly.
+        # With a shared gamma multiplier, a Poisson count is negative binomial, exactly.
+        if level_size is None:
+            return poisson_pmf(total)
         return negative_binomial_pmf(total, level_size)
+    if level_size is None:
+        parts = [negative_binomial_pmf(float(m), size) for m in presence_k if m > 0]
+        return convolve_pmfs(*parts) if parts else np.ones(1)
     if total <= 0:
         return np.ones(1)
     # Both: the negative binomial with the same mean and variance, total + (sum m^2) / size

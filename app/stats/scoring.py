@@ -34,8 +34,8 @@ __all__ = [
     "brier_score",
     "central_interval",
     "crps_pmf",
-    "interval_coverage",
     "expected_pit_coverage",
+    "interval_coverage",
     "log_score",
     "pit_coverage",
     "randomised_pit",
@@ -188,13 +188,17 @@ def randomised_pit(
     return _result(np.clip(lower + draws * (upper - lower), 0.0, 1.0), single)
 
 
+def _check_band(lower: float, upper: float) -> None:
+    if not 0 <= lower <= upper <= 1:
+        raise ValueError(f"lower, upper: need 0 <= lower <= upper <= 1, got {lower!r}, {upper!r}")
+
+
 def pit_coverage(u: npt.ArrayLike, lower: float = 0.1, upper: float = 0.9) -> float:
     """Share of PIT values in [lower, upper]; upper - lower for a calibrated forecast."""
     values = np.asarray(u, dtype=float).reshape(-1)
     if values.size == 0:
         raise ValueError("u: needs at least one PIT value")
-    if not 0 <= lower <= upper <= 1:
-        raise ValueError(f"lower, upper: need 0 <= lower <= upper <= 1, got {lower!r}, {upper!r}")
+    _check_band(lower, upper)
     return float(np.mean((values >= lower) & (values <= upper)))
 
 
@@ -208,8 +212,7 @@ def expected_pit_coverage(pmf: npt.ArrayLike, y: npt.ArrayLike, lower: float = 0
     :func:`randomised_pit` gives on average, without the noise of one set of draws: the
     same target (upper - lower for a calibrated forecast), estimated with less variance.
     """
-    if not 0 <= lower <= upper <= 1:
-        raise ValueError(f"lower, upper: need 0 <= lower <= upper <= 1, got {lower!r}, {upper!r}")
+    _check_band(lower, upper)
     rows, single = _forecasts(pmf)
     counts = _outcomes(y, rows.shape[0], single)
     cumulative = np.cumsum(rows, axis=1)

@@ -32,7 +32,7 @@ from app.stats.phasetype import Coxian
 from app.stats.phasetype_fit import CoxianSelection, select_coxian
 from app.stats.survival_tree import FeatureSpec, TreeRules
 
-__all__ = ["StayGroup", "StayGroups", "fit_stay_groups", "round_up_to_hours"]
+__all__ = ["StayGroup", "StayGroups", "entry_on_hours", "fit_stay_groups", "round_up_to_hours"]
 
 FloatArray = npt.NDArray[np.float64]
 HOUR = 1.0 / 24.0
@@ -43,6 +43,13 @@ def round_up_to_hours(days: npt.ArrayLike, hours: int = 1) -> FloatArray:
     x = np.asarray(days, dtype=float)
     per_day = 24.0 / hours
     return np.maximum(np.ceil(np.round(x * per_day, 6)), 1.0) / per_day
+
+
+def entry_on_hours(entry: npt.ArrayLike, days: FloatArray) -> FloatArray:
+    """Delayed entries (days) rounded down to the hour grid, at most each stay's rounded
+    duration ``days``: on the grid a stay stays under observation after its entry."""
+    late = np.asarray(entry, dtype=float)
+    return np.minimum(np.floor(np.round(late * 24.0, 6)) / 24.0, days)
 
 
 # The stored Kaplan-Meier curves are for display: on a six-hour grid they stay small in the
@@ -200,9 +207,8 @@ class StayGroups:
         same clock (as in :func:`fit_stay_groups`)."""
         days = round_up_to_hours(clock_durations)
         ended = np.asarray(observed, dtype=bool)
-        late = (np.zeros(days.size) if entry is None
-                else np.clip(np.asarray(entry, dtype=float), 0.0, None))
-        late = np.minimum(np.floor(np.round(late * 24.0, 6)) / 24.0, days)
+        late = entry_on_hours(np.zeros(days.size) if entry is None
+                              else np.clip(np.asarray(entry, dtype=float), 0.0, None), days)
         node = self.group_of(x)
         out = []
         for g in self.groups:
@@ -301,8 +307,7 @@ def fit_stay_groups(x: npt.ArrayLike, durations: npt.ArrayLike, observed: npt.Ar
         raise ValueError(f"entry: shape {late.shape} does not match durations {days.shape}")
     if np.any(~np.isfinite(late) | (late < 0) | (late > raw + 1e-9)):
         raise ValueError("entry: must be finite, >= 0 and at most each stay's duration")
-    # On the hour grid an entry rounds down, so a stay stays under observation after it.
-    late = np.minimum(np.floor(np.round(late * 24.0, 6)) / 24.0, days)
+    late = entry_on_hours(late, days)
     seen_from_admission = late == 0
     if not (ended & seen_from_admission).any():
         raise ValueError("entry: no ended stay was seen from its admission")

@@ -23,7 +23,7 @@ from app.forecast.los.model import LosModel, _Curves, _landmark_curves
 from app.forecast.los.rows import IntervalRows, Landmarks, _interval_weekday, _rows_weekday
 from app.forecast.los.selection import _boosted, _ensemble_x, _one_thread, _stays_at
 from app.stats.kaplan_meier import KaplanMeier
-from app.stats.stay_groups import round_up_to_hours
+from app.stats.stay_groups import entry_on_hours, round_up_to_hours
 
 EVAL_DAYS = np.arange(1.0, 15.0)  # integrated Brier score over days 1..14
 
@@ -163,8 +163,7 @@ def baseline_km(train_lm: Landmarks) -> KaplanMeier:
 
     table = _stays_at(train_lm.stays, int(train_lm.end_ns.max()), train_lm.extract_ns)
     shown = round_up_to_hours(table.days)
-    return kaplan_meier(shown, table.ended,
-                        entry=np.minimum(np.floor(np.round(table.entry * 24.0, 6)) / 24.0, shown))
+    return kaplan_meier(shown, table.ended, entry=entry_on_hours(table.entry, shown))
 
 
 def _thin_rows(rows: IntervalRows, limit: int, rng: np.random.Generator) -> IntervalRows:
