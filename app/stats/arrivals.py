@@ -354,22 +354,30 @@ class Replayed:
 def replay_candidates(days: Sequence[date], counts: npt.ArrayLike,
                       exposure: npt.ArrayLike | None = None, *, alpha: float | None = None,
                       origins: int = VALIDATION_ORIGINS, horizon: int = VALIDATION_HORIZON,
-                      half_lives: Sequence[float | None] = LEVEL_HALF_LIVES
-                      ) -> Replayed | None:
-    """Score every candidate on the weeks after rolling origins (None: too little history).
+                      half_lives: Sequence[float | None] = LEVEL_HALF_LIVES,
+                      step: int | None = None) -> Replayed | None:
+    """Score every candidate on the days after rolling origins (None: too little history).
 
-    For each weekly origin over the last ``origins`` weeks, the weekday (and, as a candidate,
-    seasonal) Poisson GLM is fitted on the days before it; each half-life's level is computed
-    from those days' admissions against the fit; the ``horizon`` days after the origin are
-    scored by their predictive log-probability (Poisson, or NB2 with dispersion ``alpha``,
-    mean x open share x level). The seasonal candidate needs ``SEASON_MIN_DAYS`` of history
-    before every origin. Parameters as :func:`choose_demand_terms`.
+    For each of the last ``origins`` origins, ``step`` days apart (default ``horizon``: the
+    last weeks, back to back), the weekday (and, as a candidate, seasonal) Poisson GLM is
+    fitted on the days before it; each half-life's level is computed from those days'
+    admissions against the fit; the ``horizon`` days after the origin are scored by their
+    predictive log-probability (Poisson, or NB2 with dispersion ``alpha``, mean x open share
+    x level). The seasonal candidate needs ``SEASON_MIN_DAYS`` of history before every
+    origin. Other parameters as :func:`choose_demand_terms`.
+
+    Origins spread over the last year (``step`` 28) were measured against the last weeks by
+    ``python -m tests.stress.season_origins``, alone and for the season only: neither was
+    better overall on simulated histories, so training keeps the last weeks.
     """
     y, open_share = _checked(days, counts, exposure)
     n = len(days)
-    usable = max(0, (n - 28) // horizon)  # keep four weeks before the first origin
+    step = horizon if step is None else step
+    if step < horizon:
+        raise ValueError(f"step: at least the horizon ({horizon}), got {step}")
+    usable = max(0, (n - 28 - horizon) // step + 1)  # four weeks before the first origin
     n_origins = min(origins, usable)
-    seasonal_ok = n - n_origins * horizon >= SEASON_MIN_DAYS
+    seasonal_ok = n - ((n_origins - 1) * step + horizon) >= SEASON_MIN_DAYS
     if n_origins < 2:
         return None
     candidates = [(s, h) for s in ((False, True) if seasonal_ok else (False,))
@@ -379,7 +387,7 @@ def replay_candidates(days: Sequence[date], counts: npt.ArrayLike,
     observed_all: list[float] = []
     origin_all: list[int] = []
     for k in range(n_origins, 0, -1):
-        cut = n - k * horizon
+        cut = n - horizon - (k - 1) * step
         ahead = slice(cut, cut + horizon)
         test = open_share[ahead] >= MIN_EXPOSURE
         if not test.any():

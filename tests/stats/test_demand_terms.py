@@ -87,3 +87,23 @@ def test_short_history_compares_nothing() -> None:
     choice = choose_demand_terms(days, _counts(days, 3.0, 5))
     assert choice.n_origins == 1 or choice.n_origins == 0
     assert not choice.seasonal and choice.level_half_life is None
+
+
+def test_origins_spread_apart_score_the_weeks_after_each() -> None:
+    # Two years of counts, origins 28 days apart: 13 held-out weeks whose first days lie
+    # 28 days apart and the last ends with the history; back to back by default.
+    from app.stats.arrivals import replay_candidates
+
+    days = _days(730)
+    counts = _counts(days, 5.0, 3)
+    spread = replay_candidates(days, counts, step=28)
+    weekly = replay_candidates(days, counts)
+    assert spread is not None and weekly is not None
+    assert spread.n_origins == weekly.n_origins == 13
+    for replayed, step in ((spread, 28), (weekly, 7)):
+        assert replayed.observed.size == 13 * 7
+        firsts = [730 - 7 - k * step for k in range(12, -1, -1)]
+        assert replayed.observed.tolist() == [float(counts[f + i]) for f in firsts
+                                              for i in range(7)]
+    with pytest.raises(ValueError, match="step"):
+        replay_candidates(days, counts, step=3)
