@@ -41,6 +41,7 @@ from app.forecast.training_data import TooLittleHistory
 from app.state import UnitState
 from app.state.frames import utc_ns
 from app.stats.arrivals import (
+    HOSPITAL,
     MIN_EXPOSURE,
     DailyRateModel,
     choose_demand_terms,
@@ -269,19 +270,35 @@ def _transfer_streams(state: UnitState, came: pd.Series, first: date, last: date
     return out
 
 
-def train_arrivals(state: UnitState, units: Collection[str] = ()) -> dict[str, Any]:
+def emergency_counts(state: UnitState, units: Collection[str] = ()
+                     ) -> tuple[list[date], np.ndarray]:
+    """The unit's emergency admissions (not passed on by another of ``units``) on every
+    local day of its fitting window (:func:`_window`, at most ``FIT_WINDOW_DAYS``)."""
+    stays = state.stays
+    came = passed_on_mask(stays, sorted(u for u in units if u != state.unit))
+    emergency = (stays["admission_type"] == "emergency") & ~came
+    first, last = _window(state, FIT_WINDOW_DAYS)
+    days, counts = _daily_counts(_local(stays["admitted_at"], state)[emergency], first, last)
+    return days, np.asarray(counts)
+
+
+def train_arrivals(state: UnitState, units: Collection[str] = (),
+                   hospital_season: tuple[float, float] | None = None) -> dict[str, Any]:
     """The arrivals part of a trained model, as a JSON-ready dict.
 
     ``units``: the hospital's unit codes at training. Stays admitted by transfer from one of
     them are not part of the emergency stream: they are forecast through their sending unit
-    (app/forecast/transfers.py), with a stream of their own per sender as its fallback."""
+    (app/forecast/transfers.py), with a stream of their own per sender as its fallback.
+    ``hospital_season``: the annual pair of all units' emergency demand
+    (:func:`app.forecast.hospital_demand.hospital_season_at`), offered to the held-out weeks
+    as a candidate pattern."""
     stays = state.stays
     admitted = _local(stays["admitted_at"], state)
     senders = sorted(u for u in units if u != state.unit)
     came = passed_on_mask(stays, senders)
     emergency = (stays["admission_type"] == "emergency") & ~came
     first, last = _window(state, FIT_WINDOW_DAYS)
-    days, counts = _daily_counts(admitted[emergency], first, last)
+    days, counts = emergency_counts(state, units)
     if len(days) < MIN_WINDOW_DAYS:
         raise TooLittleHistory(
             f"unit {state.unit}: {max(len(days), 0)} whole day(s) of complete admissions "
@@ -304,10 +321,17 @@ def train_arrivals(state: UnitState, units: Collection[str] = ()) -> dict[str, A
     # overdispersed unit's busy days look like changes of level and pull a level in (on the
     # demo's critical-care backtest that cost 0.7% CRPS against scoring with the NB2).
     plain = fit_daily_rate(days, counts, exposure=exposure, seasonal=False)
-    choice = choose_demand_terms(days, counts, exposure=exposure, alpha=plain.alpha)
-    rate = (fit_daily_rate(days, counts, exposure=exposure, seasonal=True,
-                           level_half_life=choice.level_half_life) if choice.seasonal
-            else replace(plain, level_half_life=choice.level_half_life))
+    choice = choose_demand_terms(days, counts, exposure=exposure, alpha=plain.alpha,
+                                 hospital_season=hospital_season)
+    if choice.seasonal == HOSPITAL:
+        rate = fit_daily_rate(days, counts, exposure=exposure, seasonal=False,
+                              level_half_life=choice.level_half_life,
+                              hospital_season=hospital_season)
+    elif choice.seasonal:
+        rate = fit_daily_rate(days, counts, exposure=exposure, seasonal=True,
+                              level_half_life=choice.level_half_life)
+    else:
+        rate = replace(plain, level_half_life=choice.level_half_life)
     if choice.heldout_days:
         # The forecast's spread is that of the held-out days around what the chosen terms
         # forecast for them, not the in-sample scatter around the fitted curve (which counts a

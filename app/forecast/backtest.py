@@ -37,6 +37,7 @@ from scipy import stats
 from sqlalchemy.orm import Session
 
 from app.forecast.arrivals import train_arrivals
+from app.forecast.hospital_demand import hospital_season_at
 from app.forecast.los import LosModel, train_los
 from app.forecast.routing import fit_routing
 from app.forecast.service import ModelRecord, forecast_from_state, forecast_inputs
@@ -189,11 +190,13 @@ def _sarimax(series: np.ndarray, steps: int, kmax: int) -> list[np.ndarray]:
     return [_normal_pmf(m, s, kmax) for m, s in zip(means, np.sqrt(variances), strict=True)]
 
 
-def _trained(known: UnitState, units: list[str], morning: datetime) -> ModelRecord:
+def _trained(known: UnitState, units: list[str], morning: datetime,
+             season: tuple[float, float] | None = None) -> ModelRecord:
     """A model of ``known``'s unit on what it knew (held in memory, as ``train_model``
-    would store it: length of stay, arrivals, routing)."""
+    would store it: length of stay, arrivals, routing); ``season``: the hospital's annual
+    pair as known then (app/forecast/hospital_demand.py)."""
     payload = train_los(known, evaluate=False, compare=False)
-    payload["arrivals"] = train_arrivals(known, units)
+    payload["arrivals"] = train_arrivals(known, units, season)
     los = LosModel.from_payload(payload)
     payload["routing"] = fit_routing(known, units, los.groups, los.design)
     return ModelRecord(f"backtest-{known.unit}-{morning:%Y%m%d}", morning, payload)
@@ -220,8 +223,11 @@ def run_backtest(session: Session, unit: str, start: date, end: date, tz: ZoneIn
     mornings = [localize(datetime.combine(start + timedelta(days=i), at), tz).astimezone(UTC)
                 for i in range((end - start).days + 1)]
     last_needed = census_instants_after(mornings[-1], _census_time(session, unit), tz, days)[-1]
-    full = load_state(session, unit, last_needed + timedelta(hours=1), tz, with_history=True)
-    sender_full: dict[str, UnitState] = {}
+    # Every unit as finally known (the hospital's season is learnt from all of them, each
+    # as known at the retraining morning); other units pass patients on from these too.
+    every = {code: load_state(session, code, last_needed + timedelta(hours=1), tz,
+                              with_history=True) for code in units}
+    full = every[unit]
     sender_records: dict[str, ModelRecord] = {}
     history_all = census_series(full, last_needed, (last_needed - mornings[0]).days + 400)
     scored = {m: Scored() for m in (METHODS if baselines else METHODS[:1])}
@@ -232,19 +238,17 @@ def run_backtest(session: Session, unit: str, start: date, end: date, tz: ZoneIn
         if trained_on is None or (morning - trained_on).days >= retrain_days:
             if progress:
                 progress(i, len(mornings), f"training on what was known at {morning:%Y-%m-%d}")
-            record = _trained(known, units, morning)
+            known_all = {code: state.known_at(morning) for code, state in every.items()}
+            season = hospital_season_at(known_all.values(), units)
+            record = _trained(known, units, morning, season)
             trained_on = morning
             for code in sender_units(record.payload) if transfers == "pass-on" else ():
-                if code not in sender_full:
-                    sender_full[code] = load_state(session, code, last_needed
-                                                   + timedelta(hours=1), tz, with_history=True)
                 try:
-                    sender_records[code] = _trained(sender_full[code].known_at(morning), units,
-                                                    morning)
+                    sender_records[code] = _trained(known_all[code], units, morning, season)
                 except (TooLittleHistory, ValueError):  # too little history there: a stream
                     sender_records.pop(code, None)
         assert record is not None
-        senders = [Sender(code, sender_full[code].known_at(morning),
+        senders = [Sender(code, every[code].known_at(morning),
                           sender_records[code].payload) if code in sender_records
                    else Sender(code) for code in sender_units(record.payload) if code != unit]
         result = forecast_from_state(known, record, days=days, paths=0, senders=senders)

@@ -28,6 +28,7 @@ from app.forecast.arrivals import (
     train_arrivals,
     unbooked_means,
 )
+from app.forecast.hospital_demand import hospital_season_from
 from app.forecast.los import LosModel, train_los
 from app.forecast.los.constants import NS_PER_DAY
 from app.forecast.models import newest_model, save_model
@@ -78,7 +79,8 @@ def train_model(session: Session, unit: str, until: datetime, tz: ZoneInfo,
     state = load_state(session, unit, until, tz, with_history=True)
     payload = train_los(state, test_days=test_days)
     units = [u.code for u in repo.list_units(session)]
-    payload["arrivals"] = train_arrivals(state, units)
+    season = hospital_season_from(session, until, tz, units, {unit: state})
+    payload["arrivals"] = train_arrivals(state, units, season)
     los = LosModel.from_payload(payload)
     payload["routing"] = fit_routing(state, units, los.groups, los.design)
     payload["exit_block"] = _exit_blocks(session, state, payload, tz)

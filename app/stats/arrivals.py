@@ -15,7 +15,10 @@ the meantime, which is exactly what that comparison catches.
 A local level follows recent demand: the ratio of the admissions seen to those the model
 expected, over the past days weighted by a half-life and shrunk towards 1 by a week's worth of
 expected admissions (:func:`level_multiplier`); the half-life (or none) is chosen by the same
-rolling-origin comparison.
+rolling-origin comparison. Besides the unit's own annual pair, the hospital's (one pair
+fitted to all units' counts at once, app/stats/hospital_season.py) is a candidate: a fixed
+offset with no parameter of the unit's own, so a unit with one year of history, too little
+for its own, can still follow a winter rise its siblings show.
 
 Where a day was only partly open to admissions (a full unit turns emergencies away, and those
 leave no record), its count is the day's demand thinned to the open part:
@@ -54,6 +57,7 @@ import numpy.typing as npt
 from scipy import stats
 
 from app.stats.demand_spread import heldout_spread
+from app.stats.hospital_season import season_offset
 
 __all__ = ["DailyRateModel", "DemandChoice", "Replayed", "choose_demand_terms", "fit_daily_rate",
            "chosen_by_one_se", "hourly_profile", "level_multiplier", "replay_candidates"]
@@ -116,6 +120,9 @@ class DailyRateModel:
     tau2 : float or None
         Variance of a multiplier shared by all the days of one forecast (mean 1; the level's
         own error, app/stats/demand_spread.py); None: the days' errors are independent.
+    hospital_season : (float, float) or None
+        The hospital's annual pair (app/stats/hospital_season.py), a fixed offset on the log
+        scale in place of a seasonal pair of the unit's own; None: not used.
     """
 
     coefficients: tuple[float, ...]
@@ -127,12 +134,16 @@ class DailyRateModel:
     exposure_mean: float = field(default=1.0)
     level_half_life: float | None = field(default=None)
     tau2: float | None = field(default=None)
+    hospital_season: tuple[float, float] | None = field(default=None)
 
     def mean(self, days: Sequence[date]) -> npt.NDArray[np.float64]:
         """Expected count on each of ``days``."""
         if not days:
             return np.zeros(0)
-        return np.exp(_design(days, self.seasonal) @ np.asarray(self.coefficients))
+        log_mu = _design(days, self.seasonal) @ np.asarray(self.coefficients)
+        if self.hospital_season is not None:
+            log_mu = log_mu + season_offset(days, self.hospital_season)
+        return np.exp(log_mu)
 
     @property
     def size(self) -> float | None:
@@ -149,7 +160,9 @@ class DailyRateModel:
                 "alpha": self.alpha, "n_days": self.n_days,
                 "overdispersion_p": self.overdispersion_p, "mean_count": self.mean_count,
                 "exposure_mean": self.exposure_mean, "level_half_life": self.level_half_life,
-                "tau2": self.tau2}
+                "tau2": self.tau2,
+                "hospital_season": (None if self.hospital_season is None
+                                    else list(self.hospital_season))}
 
     @classmethod
     def from_dict(cls, data: Mapping[str, Any]) -> DailyRateModel:
@@ -161,7 +174,10 @@ class DailyRateModel:
                    exposure_mean=float(data.get("exposure_mean", 1.0)),
                    level_half_life=(None if data.get("level_half_life") is None
                                     else float(data["level_half_life"])),
-                   tau2=None if data.get("tau2") is None else float(data["tau2"]))
+                   tau2=None if data.get("tau2") is None else float(data["tau2"]),
+                   hospital_season=(None if data.get("hospital_season") is None
+                                    else (float(data["hospital_season"][0]),
+                                          float(data["hospital_season"][1]))))
 
 
 def _checked(days: Sequence[date], counts: npt.ArrayLike, exposure: npt.ArrayLike | None
@@ -180,7 +196,8 @@ def _checked(days: Sequence[date], counts: npt.ArrayLike, exposure: npt.ArrayLik
 
 def fit_daily_rate(days: Sequence[date], counts: npt.ArrayLike,
                    exposure: npt.ArrayLike | None = None, *, seasonal: bool | None = None,
-                   level_half_life: float | None = None) -> DailyRateModel:
+                   level_half_life: float | None = None,
+                   hospital_season: tuple[float, float] | None = None) -> DailyRateModel:
     """Fit the daily count model.
 
     Parameters
@@ -196,14 +213,19 @@ def fit_daily_rate(days: Sequence[date], counts: npt.ArrayLike,
         (pass the choice of :func:`choose_demand_terms` instead where there is one).
     level_half_life : float, optional
         Stored with the model for the forecast's local level (:func:`level_multiplier`).
+    hospital_season : (float, float), optional
+        The hospital's annual pair as a fixed offset (use with ``seasonal=False``).
 
     Returns
     -------
     DailyRateModel
     """
     y, open_share = _checked(days, counts, exposure)
+    if seasonal and hospital_season is not None:
+        raise ValueError("seasonal and hospital_season: one annual pattern at most")
     if seasonal is None:
-        seasonal = len(days) >= SEASON_UNCHECKED_DAYS  # the window's span, closed days included
+        # the window's span, closed days included
+        seasonal = hospital_season is None and len(days) >= SEASON_UNCHECKED_DAYS
     keep = open_share >= MIN_EXPOSURE
     days = [d for d, k in zip(days, keep, strict=True) if k]
     y, open_share = y[keep], open_share[keep]
@@ -212,10 +234,13 @@ def fit_daily_rate(days: Sequence[date], counts: npt.ArrayLike,
                          f"got {len(days)}")
     x = _design(days, seasonal)
     offset = np.log(open_share)
+    if hospital_season is not None:
+        offset = offset + season_offset(days, hospital_season)
     if y.sum() == 0:
         coefficients = np.r_[-30.0, np.zeros(x.shape[1] - 1)]
         return DailyRateModel(tuple(coefficients), seasonal, None, len(days), 1.0, 0.0,
-                              float(open_share.mean()), level_half_life)
+                              float(open_share.mean()), level_half_life,
+                              hospital_season=hospital_season)
     # Imported here: statsmodels takes seconds to import and only fitting needs it, so
     # each web server worker starts without it.
     import statsmodels.api as sm
@@ -232,7 +257,7 @@ def fit_daily_rate(days: Sequence[date], counts: npt.ArrayLike,
     if slope <= 0 or p_value >= OVERDISPERSION_LEVEL:
         return DailyRateModel(tuple(float(c) for c in poisson.params), seasonal, None, len(days),
                               p_value, float(y.mean()), float(open_share.mean()),
-                              level_half_life)
+                              level_half_life, hospital_season=hospital_season)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         nb = sm.NegativeBinomial(y, x, loglike_method="nb2", offset=offset).fit(
@@ -240,7 +265,7 @@ def fit_daily_rate(days: Sequence[date], counts: npt.ArrayLike,
     params = np.asarray(nb.params, dtype=float)
     return DailyRateModel(tuple(float(c) for c in params[:-1]), seasonal, float(params[-1]),
                           len(days), p_value, float(y.mean()), float(open_share.mean()),
-                          level_half_life)
+                          level_half_life, hospital_season=hospital_season)
 
 
 def level_multiplier(observed: npt.ArrayLike, expected: npt.ArrayLike,
@@ -277,24 +302,31 @@ def level_multiplier(observed: npt.ArrayLike, expected: npt.ArrayLike,
     return float((w @ y + prior) / (w @ e + prior))
 
 
+# The annual pattern of a candidate: none (False), the unit's own pair (True), or the
+# hospital's pair as a fixed offset (HOSPITAL, app/stats/hospital_season.py).
+HOSPITAL = "hospital"
+Season = bool | str
+
+
 @dataclass(frozen=True)
 class DemandChoice:
     """The demand terms chosen on held-out weeks, and the evidence.
 
     Attributes
     ----------
-    seasonal : bool
+    seasonal : bool or ``HOSPITAL``
+        No annual pattern, the unit's own, or the hospital's.
     level_half_life : float or None
-    scores : tuple of (bool, float or None, float)
-        Each candidate (seasonal, half-life) with its mean log score per held-out day
+    scores : tuple of (bool or str, float or None, float)
+        Each candidate (annual pattern, half-life) with its mean log score per held-out day
         (higher is better).
     n_origins : int
         Weekly origins scored (0: too little history to compare; the defaults stand).
     """
 
-    seasonal: bool
+    seasonal: Season
     level_half_life: float | None
-    scores: tuple[tuple[bool, float | None, float], ...]
+    scores: tuple[tuple[Season, float | None, float], ...]
     n_origins: int
     # The spread of the held-out days around the chosen candidate's held-out means
     # (app/stats/demand_spread.py): NB2 dispersion day by day (None: none) and the variance of
@@ -313,26 +345,35 @@ class DemandChoice:
 
 
 def _poisson_means(days: Sequence[date], y: npt.NDArray[np.float64],
-                   open_share: npt.NDArray[np.float64], seasonal: bool,
-                   ahead: Sequence[date]) -> tuple[npt.NDArray[np.float64],
-                                                   npt.NDArray[np.float64]] | None:
-    """The Poisson GLM's demand on the fitted days and on ``ahead`` (None if it cannot fit)."""
+                   open_share: npt.NDArray[np.float64], seasonal: Season,
+                   ahead: Sequence[date], hospital_season: tuple[float, float] | None = None
+                   ) -> tuple[npt.NDArray[np.float64], npt.NDArray[np.float64]] | None:
+    """The Poisson GLM's demand on the fitted days and on ``ahead`` (None if it cannot fit);
+    ``seasonal`` ``HOSPITAL``: the weekday GLM with ``hospital_season`` as an offset."""
     import statsmodels.api as sm
 
     keep = open_share >= MIN_EXPOSURE
     if keep.sum() < 14 or y[keep].sum() == 0:
         return None
     fit_days = [d for d, k in zip(days, keep, strict=True) if k]
+    own = seasonal is True
+    pair = hospital_season if seasonal == HOSPITAL else None
+    if seasonal == HOSPITAL and pair is None:
+        raise ValueError("the hospital's season needs hospital_season")
+
+    def offset(on: Sequence[date]) -> npt.NDArray[np.float64]:
+        return np.zeros(len(on)) if pair is None else season_offset(on, pair)
+
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
-        model = sm.GLM(y[keep], _design(fit_days, seasonal), family=sm.families.Poisson(),
-                       offset=np.log(open_share[keep])).fit()
+        model = sm.GLM(y[keep], _design(fit_days, own), family=sm.families.Poisson(),
+                       offset=np.log(open_share[keep]) + offset(fit_days)).fit()
     params = np.asarray(model.params, dtype=float)
-    return (np.exp(_design(list(days), seasonal) @ params),
-            np.exp(_design(list(ahead), seasonal) @ params))
+    return (np.exp(_design(list(days), own) @ params + offset(list(days))),
+            np.exp(_design(list(ahead), own) @ params + offset(list(ahead))))
 
 
-Candidate = tuple[bool, float | None]  # (seasonal, level half-life)
+Candidate = tuple[Season, float | None]  # (annual pattern, level half-life)
 
 
 @dataclass(frozen=True)
@@ -355,7 +396,8 @@ def replay_candidates(days: Sequence[date], counts: npt.ArrayLike,
                       exposure: npt.ArrayLike | None = None, *, alpha: float | None = None,
                       origins: int = VALIDATION_ORIGINS, horizon: int = VALIDATION_HORIZON,
                       half_lives: Sequence[float | None] = LEVEL_HALF_LIVES,
-                      step: int | None = None) -> Replayed | None:
+                      step: int | None = None,
+                      hospital_season: tuple[float, float] | None = None) -> Replayed | None:
     """Score every candidate on the days after rolling origins (None: too little history).
 
     For each of the last ``origins`` origins, ``step`` days apart (default ``horizon``: the
@@ -364,7 +406,9 @@ def replay_candidates(days: Sequence[date], counts: npt.ArrayLike,
     admissions against the fit; the ``horizon`` days after the origin are scored by their
     predictive log-probability (Poisson, or NB2 with dispersion ``alpha``, mean x open share
     x level). The seasonal candidate needs ``SEASON_MIN_DAYS`` of history before every
-    origin. Other parameters as :func:`choose_demand_terms`.
+    origin; the hospital's pattern (``hospital_season``, fitted apart from the unit's own
+    counts' season) is a candidate whenever it is given. Other parameters as
+    :func:`choose_demand_terms`.
 
     Origins spread over the last year (``step`` 28) were measured against the last weeks by
     ``python -m tests.stress.season_origins``, alone and for the season only: neither was
@@ -380,8 +424,14 @@ def replay_candidates(days: Sequence[date], counts: npt.ArrayLike,
     seasonal_ok = n - ((n_origins - 1) * step + horizon) >= SEASON_MIN_DAYS
     if n_origins < 2:
         return None
-    candidates = [(s, h) for s in ((False, True) if seasonal_ok else (False,))
-                  for h in half_lives]
+    # Simplest first (for the one-standard-error rule): no annual pattern, the hospital's
+    # (no parameter of the unit's own), the unit's own pair.
+    patterns: list[Season] = [False]
+    if hospital_season is not None:
+        patterns.append(HOSPITAL)
+    if seasonal_ok:
+        patterns.append(True)
+    candidates = [(s, h) for s in patterns for h in half_lives]
     per_day: dict[Candidate, list[float]] = {c: [] for c in candidates}
     means_of: dict[Candidate, list[float]] = {c: [] for c in candidates}
     observed_all: list[float] = []
@@ -397,7 +447,7 @@ def replay_candidates(days: Sequence[date], counts: npt.ArrayLike,
         origin_all.extend([k] * observed.size)
         for seasonal in {s for s, _ in candidates}:
             means = _poisson_means(days[:cut], y[:cut], open_share[:cut], seasonal,
-                                   days[ahead])
+                                   days[ahead], hospital_season)
             for h in {h for s, h in candidates if s == seasonal}:
                 if means is None:
                     per_day[(seasonal, h)].extend([-1e6] * observed.size)
@@ -435,12 +485,13 @@ def chosen_by_one_se(candidates: Sequence[Candidate],
 def choose_demand_terms(days: Sequence[date], counts: npt.ArrayLike,
                         exposure: npt.ArrayLike | None = None, *, alpha: float | None = None,
                         origins: int = VALIDATION_ORIGINS, horizon: int = VALIDATION_HORIZON,
-                        half_lives: Sequence[float | None] = LEVEL_HALF_LIVES
-                        ) -> DemandChoice:
+                        half_lives: Sequence[float | None] = LEVEL_HALF_LIVES,
+                        hospital_season: tuple[float, float] | None = None) -> DemandChoice:
     """Choose the annual term and the local level's half-life by rolling-origin validation.
 
     Every candidate is scored on the replayed weeks (:func:`replay_candidates`); the first
-    candidate (no season before season; no level, then the half-lives in the order given)
+    candidate (no season, then the hospital's, then the unit's own; no level, then the
+    half-lives in the order given)
     whose mean score is within one standard error of the best's is kept (the
     one-standard-error rule, below). The chosen candidate's held-out days then
     give the forecast's spread (:func:`app.stats.demand_spread.heldout_spread`), when there
@@ -454,13 +505,16 @@ def choose_demand_terms(days: Sequence[date], counts: npt.ArrayLike,
         NB2 dispersion of the full-window fit, for the scores.
     origins, horizon : int
     half_lives : sequence of float or None
+    hospital_season : (float, float), optional
+        The hospital's annual pair (app/stats/hospital_season.py): a candidate pattern.
 
     Returns
     -------
     DemandChoice
     """
     replayed = replay_candidates(days, counts, exposure, alpha=alpha, origins=origins,
-                                 horizon=horizon, half_lives=half_lives)
+                                 horizon=horizon, half_lives=half_lives,
+                                 hospital_season=hospital_season)
     if replayed is None:
         return DemandChoice(False, None, (), 0)
     table = replayed.log_scores

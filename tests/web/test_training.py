@@ -9,6 +9,8 @@
 
 from __future__ import annotations
 
+import html
+import json
 import shutil
 import threading
 import time
@@ -191,6 +193,7 @@ def test_the_page_starts_a_real_training_process_and_shows_it(
         assert stored is not None and stored.trained_until == demo_now
         found = newest_model(session, "KV-CRIT", demo_now)
         assert found is not None and found[0] == latest["model_id"]  # what forecasts now use
+        terms = json.loads(stored.payload)["arrivals"]["emergency"]["terms"]
     # The new model's page says which demand patterns were chosen, and on what evidence.
     shown = manager.get("/units/KV-CRIT/model").text
     assert "Emergency demand: which patterns the forecast uses" in shown
@@ -198,6 +201,13 @@ def test_the_page_starts_a_real_training_process_and_shows_it(
     assert "is measured on the same 91 replayed days" in shown  # the held-out dispersion
     # ... and whether the days forecast from one morning miss together (shared variance).
     assert "forecast from one morning" in shown and "miss together" in shown
+    # The yearly pattern chosen, as the stored model has it; the hospital's is among the
+    # candidates scored (the demo's two units hold more than the year and a half it needs).
+    text = html.unescape(shown)
+    assert {False: "no yearly pattern", True: "the unit's own yearly pattern",
+            "hospital": "the hospital's yearly pattern"}[terms["seasonal"]] in text
+    assert any(row["seasonal"] == "hospital" for row in terms["scores"])
+    assert "<td>the hospital's</td>" in text
     done_page = TestClient(app).get("/units/KV-CRIT/training", follow_redirects=False)
     assert done_page.status_code == 303  # signed out: sent to sign in, nothing shown
     db.release_engine(url)
