@@ -60,3 +60,33 @@ def test_forecast_from_everything_equals_forecast_from_what_was_known(
     assert a.shape == b.shape and a.size > 100
     np.testing.assert_allclose(a, b, rtol=0, atol=1e-12)
     assert everything["model"]["trained_until"] == known["model"]["trained_until"]
+
+
+@pytest.mark.slow
+def test_the_hospitals_pattern_a_backtest_learns_at_a_morning_sees_only_that_morning(
+        migrated_template: Path, tmp_path: Path) -> None:
+    # run_backtest learns the hospital's yearly pattern at each retraining morning from every
+    # unit's state as known then (UnitState.known_at on the full history); it must equal the
+    # pattern learnt from a database holding only what was known at that morning. (Without
+    # known_at, the later history moves the pair by 0.02: measured when this test was written.)
+    from app.forecast.hospital_demand import hospital_season_at, hospital_season_from
+    from app.state import load_state
+    from app.store import repo
+
+    as_of = CUT.replace(tzinfo=UTC)
+    pairs = []
+    for name, files in (("everything", None), ("known", known_at(DEMO_DIR, CUT))):
+        url = _database(migrated_template, tmp_path / f"{name}.db", files)
+        with db.session_scope(url) as session:
+            units = [u.code for u in repo.list_units(session)]
+            if name == "everything":
+                later = datetime(2026, 11, 29, 8, 0, tzinfo=UTC)
+                states = [load_state(session, u, later, UTC_ZONE, with_history=True)
+                          .known_at(as_of) for u in units]
+                pairs.append(hospital_season_at(states, units))
+            else:
+                pairs.append(hospital_season_from(session, as_of, UTC_ZONE, units))
+        db.release_engine(url)
+    replayed, known = pairs
+    assert replayed is not None and known is not None
+    np.testing.assert_allclose(replayed, known, rtol=0, atol=1e-10)
