@@ -4,6 +4,7 @@ forecast from a database holding only what was known at T (training included).""
 from __future__ import annotations
 
 import shutil
+from collections.abc import Iterator
 from datetime import UTC, datetime
 from pathlib import Path
 
@@ -34,6 +35,14 @@ def _database(template: Path, path: Path, files: dict[str, bytes] | None) -> str
     return url
 
 
+def _databases(template: Path, tmp_path: Path) -> Iterator[tuple[str, str]]:
+    """("everything", url) then ("known", url): the demo whole, and as known at CUT."""
+    for name, files in (("everything", None), ("known", known_at(DEMO_DIR, CUT))):
+        url = _database(template, tmp_path / f"{name}.db", files)
+        yield name, url
+        db.release_engine(url)
+
+
 def _strings(obj: object) -> list[str]:
     if isinstance(obj, dict):
         return [v for k in sorted(obj) if k != "id" for v in [k, *_strings(obj[k])]]
@@ -47,13 +56,11 @@ def test_forecast_from_everything_equals_forecast_from_what_was_known(
         migrated_template: Path, tmp_path: Path) -> None:
     as_of = CUT.replace(tzinfo=UTC)
     results = []
-    for name, files in (("everything", None), ("known", known_at(DEMO_DIR, CUT))):
-        url = _database(migrated_template, tmp_path / f"{name}.db", files)
+    for _, url in _databases(migrated_template, tmp_path):
         with db.session_scope(url) as session:
             train_model(session, UNIT, as_of, UTC_ZONE)
         with db.session_scope(url) as session:
             results.append(forecast(session, UNIT, as_of, UTC_ZONE, days=7, paths=2000, seed=5))
-        db.release_engine(url)
     everything, known = results
     assert _strings(everything) == _strings(known)
     a, b = np.array(numbers_of(everything)), np.array(numbers_of(known))
@@ -75,8 +82,7 @@ def test_the_hospitals_pattern_a_backtest_learns_at_a_morning_sees_only_that_mor
 
     as_of = CUT.replace(tzinfo=UTC)
     pairs = []
-    for name, files in (("everything", None), ("known", known_at(DEMO_DIR, CUT))):
-        url = _database(migrated_template, tmp_path / f"{name}.db", files)
+    for name, url in _databases(migrated_template, tmp_path):
         with db.session_scope(url) as session:
             units = [u.code for u in repo.list_units(session)]
             if name == "everything":
@@ -86,7 +92,6 @@ def test_the_hospitals_pattern_a_backtest_learns_at_a_morning_sees_only_that_mor
                 pairs.append(hospital_season_at(states, units))
             else:
                 pairs.append(hospital_season_from(session, as_of, UTC_ZONE, units))
-        db.release_engine(url)
     replayed, known = pairs
     assert replayed is not None and known is not None
     np.testing.assert_allclose(replayed, known, rtol=0, atol=1e-10)
