@@ -41,11 +41,11 @@ from app.forecast.training_data import TooLittleHistory
 from app.state import UnitState
 from app.state.frames import utc_ns
 from app.stats.arrivals import (
-    HOSPITAL,
     MIN_EXPOSURE,
     DailyRateModel,
     choose_demand_terms,
     fit_daily_rate,
+    fit_terms,
     hourly_profile,
     level_multiplier,
 )
@@ -249,6 +249,11 @@ def passed_on_mask(stays: pd.DataFrame, senders: Collection[str]) -> pd.Series:
     return stays["from_unit"].isin(list(senders))
 
 
+def emergency_mask(stays: pd.DataFrame, senders: Collection[str]) -> pd.Series:
+    """The unit's own emergency stream: emergency stays not passed on by one of ``senders``."""
+    return (stays["admission_type"] == "emergency") & ~passed_on_mask(stays, senders)
+
+
 def _transfer_streams(state: UnitState, came: pd.Series, first: date, last: date
                       ) -> dict[str, Any]:
     """Per sending unit, its transfers in as a stream of their own (daily rate by weekday,
@@ -275,11 +280,9 @@ def emergency_counts(state: UnitState, units: Collection[str] = ()
     """The unit's emergency admissions (not passed on by another of ``units``) on every
     local day of its fitting window (:func:`_window`, at most ``FIT_WINDOW_DAYS``)."""
     stays = state.stays
-    came = passed_on_mask(stays, sorted(u for u in units if u != state.unit))
-    emergency = (stays["admission_type"] == "emergency") & ~came
+    emergency = emergency_mask(stays, [u for u in units if u != state.unit])
     first, last = _window(state, FIT_WINDOW_DAYS)
-    days, counts = _daily_counts(_local(stays["admitted_at"], state)[emergency], first, last)
-    return days, np.asarray(counts)
+    return _daily_counts(_local(stays["admitted_at"], state)[emergency], first, last)
 
 
 def train_arrivals(state: UnitState, units: Collection[str] = (),
@@ -296,9 +299,9 @@ def train_arrivals(state: UnitState, units: Collection[str] = (),
     admitted = _local(stays["admitted_at"], state)
     senders = sorted(u for u in units if u != state.unit)
     came = passed_on_mask(stays, senders)
-    emergency = (stays["admission_type"] == "emergency") & ~came
+    emergency = emergency_mask(stays, senders)
     first, last = _window(state, FIT_WINDOW_DAYS)
-    days, counts = emergency_counts(state, units)
+    days, counts = _daily_counts(admitted[emergency], first, last)
     if len(days) < MIN_WINDOW_DAYS:
         raise TooLittleHistory(
             f"unit {state.unit}: {max(len(days), 0)} whole day(s) of complete admissions "
@@ -323,15 +326,8 @@ def train_arrivals(state: UnitState, units: Collection[str] = (),
     plain = fit_daily_rate(days, counts, exposure=exposure, seasonal=False)
     choice = choose_demand_terms(days, counts, exposure=exposure, alpha=plain.alpha,
                                  hospital_season=hospital_season)
-    if choice.seasonal == HOSPITAL:
-        rate = fit_daily_rate(days, counts, exposure=exposure, seasonal=False,
-                              level_half_life=choice.level_half_life,
-                              hospital_season=hospital_season)
-    elif choice.seasonal:
-        rate = fit_daily_rate(days, counts, exposure=exposure, seasonal=True,
-                              level_half_life=choice.level_half_life)
-    else:
-        rate = replace(plain, level_half_life=choice.level_half_life)
+    rate = fit_terms(days, counts, exposure, choice.seasonal, choice.level_half_life,
+                     plain=plain, hospital_season=hospital_season)
     if choice.heldout_days:
         # The forecast's spread is that of the held-out days around what the chosen terms
         # forecast for them, not the in-sample scatter around the fitted curve (which counts a
@@ -518,9 +514,8 @@ def _emergency_demand(state: UnitState, arrivals: Mapping[str, Any], span: list[
         return [], rate.level_size
     today = span[0]
     stays = state.stays
-    emergency_rows = ((stays["admission_type"] == "emergency")
-                      & ~passed_on_mask(stays, arrivals["emergency"].get("not_from", ())))
-    emergency = stays.loc[emergency_rows, "admitted_at"]
+    emergency = stays.loc[emergency_mask(stays, arrivals["emergency"].get("not_from", ())),
+                          "admitted_at"]
     admitted = _local(emergency.loc[emergency <= state.as_of], state)
     profile = np.asarray(arrivals["emergency"]["hour_profile"], dtype=float)
     if rate.level_half_life is not None:

@@ -238,7 +238,8 @@ def run_backtest(session: Session, unit: str, start: date, end: date, tz: ZoneIn
         if trained_on is None or (morning - trained_on).days >= retrain_days:
             if progress:
                 progress(i, len(mornings), f"training on what was known at {morning:%Y-%m-%d}")
-            known_all = {code: state.known_at(morning) for code, state in every.items()}
+            known_all = {code: known if code == unit else state.known_at(morning)
+                         for code, state in every.items()}
             season = hospital_season_at(known_all.values(), units)
             record = _trained(known, units, morning, season)
             trained_on = morning

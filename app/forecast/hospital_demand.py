@@ -5,13 +5,9 @@ candidate pattern (app/forecast/arrivals.py)."""
 from __future__ import annotations
 
 from collections.abc import Collection, Iterable
-from datetime import datetime
-from zoneinfo import ZoneInfo
-
-from sqlalchemy.orm import Session
 
 from app.forecast.arrivals import emergency_counts
-from app.state import UnitState, load_state
+from app.state import UnitState
 from app.stats.hospital_season import pooled_season
 
 
@@ -22,13 +18,3 @@ def hospital_season_at(states: Iterable[UnitState], units: Collection[str]
     fewer than two units)."""
     return pooled_season([emergency_counts(state, units) for state in states])
 
-
-def hospital_season_from(session: Session, until: datetime, tz: ZoneInfo,
-                         units: Collection[str], loaded: dict[str, UnitState] | None = None
-                         ) -> tuple[float, float] | None:
-    """:func:`hospital_season_at` on every unit as known at ``until`` (``loaded``: states
-    already loaded at that instant, by unit)."""
-    have = loaded or {}
-    states = [have[u] if u in have else load_state(session, u, until, tz, with_history=True)
-              for u in units]
-    return hospital_season_at(states, units)

@@ -28,7 +28,7 @@ from app.forecast.arrivals import (
     train_arrivals,
     unbooked_means,
 )
-from app.forecast.hospital_demand import hospital_season_from
+from app.forecast.hospital_demand import hospital_season_at
 from app.forecast.los import LosModel, train_los
 from app.forecast.los.constants import NS_PER_DAY
 from app.forecast.models import newest_model, save_model
@@ -79,17 +79,20 @@ def train_model(session: Session, unit: str, until: datetime, tz: ZoneInfo,
     state = load_state(session, unit, until, tz, with_history=True)
     payload = train_los(state, test_days=test_days)
     units = [u.code for u in repo.list_units(session)]
-    season = hospital_season_from(session, until, tz, units, {unit: state})
-    payload["arrivals"] = train_arrivals(state, units, season)
+    # Every unit as known at ``until``, read once: the hospital's yearly pattern is learnt
+    # from all of them, and the exit blocks read the units this one passes patients on to.
+    every = {u: state if u == unit else load_state(session, u, until, tz, with_history=True)
+             for u in units}
+    payload["arrivals"] = train_arrivals(state, units, hospital_season_at(every.values(), units))
     los = LosModel.from_payload(payload)
     payload["routing"] = fit_routing(state, units, los.groups, los.design)
-    payload["exit_block"] = _exit_blocks(session, state, payload, tz)
+    payload["exit_block"] = _exit_blocks(session, state, payload, tz, every)
     model_id = save_model(session, unit, state.as_of.to_pydatetime(), payload)
     return model_id, payload
 
 
-def _exit_blocks(session: Session, state: UnitState, payload: dict[str, Any], tz: ZoneInfo
-                 ) -> dict[str, Any]:
+def _exit_blocks(session: Session, state: UnitState, payload: dict[str, Any], tz: ZoneInfo,
+                 loaded: dict[str, UnitState]) -> dict[str, Any]:
     """How ready patients' moves to each unit this one passes patients on to were held back
     while that unit was full (app/forecast/exit_block.py), from what was known at training."""
     from app.forecast.exit_block import exit_blocks
@@ -99,8 +102,9 @@ def _exit_blocks(session: Session, state: UnitState, payload: dict[str, Any], tz
     if routing is None:
         return {}
     overall = routing.shares_for(None)
-    receivers = {code: load_state(session, code, state.as_of.to_pydatetime(), tz,
-                                  with_history=True)
+    receivers = {code: loaded[code] if code in loaded
+                 else load_state(session, code, state.as_of.to_pydatetime(), tz,
+                                 with_history=True)
                  for code in routing.receiving_units()
                  if code != state.unit and overall.get(code, 0.0) > 0}
     return exit_blocks(state, receivers)

@@ -48,7 +48,7 @@ from __future__ import annotations
 import math
 import warnings
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from datetime import date
 from typing import Any
 
@@ -57,9 +57,10 @@ import numpy.typing as npt
 from scipy import stats
 
 from app.stats.demand_spread import heldout_spread
-from app.stats.hospital_season import season_offset
+from app.stats.hospital_season import annual_angle, season_offset
 
 __all__ = ["DailyRateModel", "DemandChoice", "Replayed", "choose_demand_terms", "fit_daily_rate",
+           "fit_terms",
            "chosen_by_one_se", "hourly_profile", "level_multiplier", "replay_candidates"]
 
 # The annual pair is tried (as a candidate on held-out weeks) from one full cycle of history
@@ -84,13 +85,18 @@ MIN_HELDOUT_DAYS = 28
 MIN_EXPOSURE = 0.05
 
 
+# The annual pattern of a candidate: none (False), the unit's own pair (True), or the
+# hospital's pair as a fixed offset (HOSPITAL, app/stats/hospital_season.py).
+HOSPITAL = "hospital"
+Season = bool | str
+
+
 def _design(days: Sequence[date], seasonal: bool) -> npt.NDArray[np.float64]:
     weekday = np.array([d.weekday() for d in days])
     columns = [np.ones(len(days))]
     columns += [(weekday == w).astype(float) for w in range(1, 7)]
     if seasonal:
-        doy = np.array([d.timetuple().tm_yday for d in days], dtype=float)
-        angle = 2 * np.pi * doy / 365.25
+        angle = annual_angle(days)
         columns += [np.cos(angle), np.sin(angle)]
     return np.column_stack(columns)
 
@@ -268,6 +274,21 @@ def fit_daily_rate(days: Sequence[date], counts: npt.ArrayLike,
                           level_half_life, hospital_season=hospital_season)
 
 
+def fit_terms(days: Sequence[date], counts: npt.ArrayLike, exposure: npt.ArrayLike | None,
+              seasonal: Season, level_half_life: float | None, *, plain: DailyRateModel,
+              hospital_season: tuple[float, float] | None = None) -> DailyRateModel:
+    """The rate model with the chosen terms (:func:`choose_demand_terms`): no season (``plain``,
+    the non-seasonal fit of the same days, reused), the hospital's pair as an offset, or the
+    unit's own pair; with ``level_half_life``."""
+    if seasonal == HOSPITAL:
+        return fit_daily_rate(days, counts, exposure, seasonal=False,
+                              level_half_life=level_half_life, hospital_season=hospital_season)
+    if seasonal:
+        return fit_daily_rate(days, counts, exposure, seasonal=True,
+                              level_half_life=level_half_life)
+    return replace(plain, level_half_life=level_half_life)
+
+
 def level_multiplier(observed: npt.ArrayLike, expected: npt.ArrayLike,
                      half_life: float | None, prior_days: float = LEVEL_PRIOR_DAYS) -> float:
     """Recent demand relative to the model: the local level that multiplies its rates.
@@ -300,12 +321,6 @@ def level_multiplier(observed: npt.ArrayLike, expected: npt.ArrayLike,
     w = 0.5 ** (age / half_life)
     prior = prior_days * float(e.mean())
     return float((w @ y + prior) / (w @ e + prior))
-
-
-# The annual pattern of a candidate: none (False), the unit's own pair (True), or the
-# hospital's pair as a fixed offset (HOSPITAL, app/stats/hospital_season.py).
-HOSPITAL = "hospital"
-Season = bool | str
 
 
 @dataclass(frozen=True)

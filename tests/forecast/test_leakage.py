@@ -18,6 +18,7 @@ from tests.conftest import DEMO_DIR, UTC_ZONE
 from tests.forecast.known_at import known_at, numbers_of
 
 CUT = datetime(2026, 10, 14, 8, 0)  # a Wednesday morning in the demo's census window
+AS_OF = CUT.replace(tzinfo=UTC)
 UNIT = "KV-CRIT"
 
 
@@ -54,13 +55,12 @@ def _strings(obj: object) -> list[str]:
 @pytest.mark.slow
 def test_forecast_from_everything_equals_forecast_from_what_was_known(
         migrated_template: Path, tmp_path: Path) -> None:
-    as_of = CUT.replace(tzinfo=UTC)
     results = []
     for _, url in _databases(migrated_template, tmp_path):
         with db.session_scope(url) as session:
-            train_model(session, UNIT, as_of, UTC_ZONE)
+            train_model(session, UNIT, AS_OF, UTC_ZONE)
         with db.session_scope(url) as session:
-            results.append(forecast(session, UNIT, as_of, UTC_ZONE, days=7, paths=2000, seed=5))
+            results.append(forecast(session, UNIT, AS_OF, UTC_ZONE, days=7, paths=2000, seed=5))
     everything, known = results
     assert _strings(everything) == _strings(known)
     a, b = np.array(numbers_of(everything)), np.array(numbers_of(known))
@@ -76,11 +76,10 @@ def test_the_hospitals_pattern_a_backtest_learns_at_a_morning_sees_only_that_mor
     # unit's state as known then (UnitState.known_at on the full history); it must equal the
     # pattern learnt from a database holding only what was known at that morning. (Without
     # known_at, the later history moves the pair by 0.02: measured when this test was written.)
-    from app.forecast.hospital_demand import hospital_season_at, hospital_season_from
+    from app.forecast.hospital_demand import hospital_season_at
     from app.state import load_state
     from app.store import repo
 
-    as_of = CUT.replace(tzinfo=UTC)
     pairs = []
     for name, url in _databases(migrated_template, tmp_path):
         with db.session_scope(url) as session:
@@ -88,10 +87,11 @@ def test_the_hospitals_pattern_a_backtest_learns_at_a_morning_sees_only_that_mor
             if name == "everything":
                 later = datetime(2026, 11, 29, 8, 0, tzinfo=UTC)
                 states = [load_state(session, u, later, UTC_ZONE, with_history=True)
-                          .known_at(as_of) for u in units]
-                pairs.append(hospital_season_at(states, units))
+                          .known_at(AS_OF) for u in units]
             else:
-                pairs.append(hospital_season_from(session, as_of, UTC_ZONE, units))
+                states = [load_state(session, u, AS_OF, UTC_ZONE, with_history=True)
+                          for u in units]
+            pairs.append(hospital_season_at(states, units))
     replayed, known = pairs
     assert replayed is not None and known is not None
     np.testing.assert_allclose(replayed, known, rtol=0, atol=1e-10)

@@ -19,7 +19,6 @@ from __future__ import annotations
 import math
 import sys
 import time
-from dataclasses import replace
 from datetime import date, timedelta
 
 import numpy as np
@@ -29,6 +28,7 @@ from app.forecast.arrivals import LEVEL_LOOKBACK_HALF_LIVES
 from app.stats.arrivals import (
     chosen_by_one_se,
     fit_daily_rate,
+    fit_terms,
     level_multiplier,
     replay_candidates,
 )
@@ -125,8 +125,7 @@ def run_one(group, seed):
     one_se = chosen_by_one_se(replayed.candidates, table, best)
     fits = {}
     for s, h in {one_se, best}:
-        fits[(s, h)] = (fit_daily_rate(hd, hy, seasonal=True, level_half_life=h) if s
-                        else replace(plain, level_half_life=h))
+        fits[(s, h)] = fit_terms(hd, hy, None, s, h, plain=plain)
     obs = y[n:]
     res = {}
     for name, key in (("one_se", one_se), ("best", best)):

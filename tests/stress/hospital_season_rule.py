@@ -20,12 +20,11 @@ from __future__ import annotations
 import math
 import sys
 import time
-from dataclasses import replace
 from datetime import date, timedelta
 
 import numpy as np
 
-from app.stats.arrivals import HOSPITAL, choose_demand_terms, fit_daily_rate
+from app.stats.arrivals import HOSPITAL, choose_demand_terms, fit_daily_rate, fit_terms
 from app.stats.hospital_season import pooled_season
 from tests.stress.demand_rule import FUTURE_WEEKS, forecast, mean_se, scores
 
@@ -84,13 +83,8 @@ def run_one(seed: int) -> dict[str, object]:
     score = {}
     for name, offered in (("without", None), ("with", pair)):
         choice = choose_demand_terms(hd, hy, alpha=plain.alpha, hospital_season=offered)
-        if choice.seasonal == HOSPITAL:
-            fit = fit_daily_rate(hd, hy, seasonal=False, level_half_life=choice.level_half_life,
-                                 hospital_season=offered)
-        elif choice.seasonal:
-            fit = fit_daily_rate(hd, hy, seasonal=True, level_half_life=choice.level_half_life)
-        else:
-            fit = replace(plain, level_half_life=choice.level_half_life)
+        fit = fit_terms(hd, hy, None, choice.seasonal, choice.level_half_life, plain=plain,
+                        hospital_season=offered)
         score[name] = scores(forecast(fit, days, y, n), y[n:], plain.alpha)[0]
         result[f"{name}_choice"] = choice.seasonal
     result["gain"] = score["with"] - score["without"]

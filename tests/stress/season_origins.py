@@ -22,7 +22,6 @@ from __future__ import annotations
 
 import sys
 import time
-from dataclasses import replace
 
 import numpy as np
 
@@ -31,6 +30,7 @@ from app.stats.arrivals import (
     Replayed,
     chosen_by_one_se,
     fit_daily_rate,
+    fit_terms,
     replay_candidates,
 )
 from tests.stress.demand_rule import GROUPS, SEED, forecast, mean_se, scores, simulate
@@ -73,8 +73,7 @@ def run_one(group: str, seed: int) -> dict[str, object]:
     result: dict[str, object] = {"group": group, "desc": desc, "n": n}
     score = {}
     for rule, (seasonal, half_life) in picked.items():
-        fit = (fit_daily_rate(hd, hy, seasonal=True, level_half_life=half_life) if seasonal
-               else replace(plain, level_half_life=half_life))
+        fit = fit_terms(hd, hy, None, seasonal, half_life, plain=plain)
         score[rule] = scores(forecast(fit, days, y, n), y[n:], plain.alpha)[0]
     for rule in ("spread", "two_stage"):
         result[rule] = score[rule] - score["recent"]
