@@ -206,6 +206,10 @@ def cmd_backtest(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
+def _cell(fmt: str, value: float | None) -> str:
+    return "-" if value is None else fmt.format(value)
+
+
 def render_backtest_table(result: dict[str, Any]) -> str:
     methods = list(result["methods"])
     lines = [f"backtest {result['unit']} {result['from']} .. {result['to']}"]
@@ -213,6 +217,9 @@ def render_backtest_table(result: dict[str, Any]) -> str:
                             ("mae_median", "mean absolute error of the median", "{:.3f}"),
                             ("pit_80", "share of PIT in [0.1, 0.9] (target 0.80)", "{:.3f}"),
                             ("pit_95", "share of PIT in [0.025, 0.975] (target 0.95)", "{:.3f}"),
+                            ("pit_80_se", "standard error of the [0.1, 0.9] share "
+                             "(batch means; - with too few mornings)", "{:.3f}"),
+                            ("pit_95_se", "standard error of the [0.025, 0.975] share", "{:.3f}"),
                             ("coverage_80", "literal 80% interval coverage", "{:.3f}"),
                             ("coverage_95", "literal 95% interval coverage", "{:.3f}"),
                             ("log_score", "log score (lower is better)", "{:.3f}")):
@@ -221,9 +228,10 @@ def render_backtest_table(result: dict[str, Any]) -> str:
         lines.append(f"{'days ahead':<18}" + "".join(f"{m:>17}" for m in methods))
         for h in range(result["days"]):
             lines.append(f"{h + 1:<18}" + "".join(
-                f"{fmt.format(result['methods'][m]['by_horizon'][h][key]):>17}" for m in methods))
+                f"{_cell(fmt, result['methods'][m]['by_horizon'][h].get(key)):>17}"
+                for m in methods))
         lines.append(f"{'all':<18}" + "".join(
-            f"{fmt.format(result['methods'][m]['all'][key]):>17}" for m in methods))
+            f"{_cell(fmt, result['methods'][m]['all'].get(key)):>17}" for m in methods))
     return "\n".join(lines)
 
 

@@ -31,12 +31,15 @@ import numpy.typing as npt
 from app.stats.poisson_binomial import CUMULATIVE_SLACK, pmf_quantile
 
 __all__ = [
+    "MIN_BATCHES",
+    "batch_means_se",
     "brier_score",
     "central_interval",
     "crps_pmf",
     "expected_pit_coverage",
     "interval_coverage",
     "log_score",
+    "pit_band_shares",
     "pit_coverage",
     "randomised_pit",
 ]
@@ -48,6 +51,9 @@ IntArray = npt.NDArray[np.int64]
 # stored pmfs drop or fold tails below 1e-12, so this is the mass such an outcome could have had.
 # Without it one such day makes the average log score infinite. Common practice, no source.
 DEFAULT_LOG_FLOOR = 1e-12
+# Fewest batches whose means give a standard error (Schmeiser 1982 advises 10 to 30; four
+# fortnights are the eight weeks of a short backtest). Common practice, no source for four.
+MIN_BATCHES = 4
 
 
 def _forecasts(pmf: npt.ArrayLike) -> tuple[FloatArray, bool]:
@@ -202,15 +208,13 @@ def pit_coverage(u: npt.ArrayLike, lower: float = 0.1, upper: float = 0.9) -> fl
     return float(np.mean((values >= lower) & (values <= upper)))
 
 
-def expected_pit_coverage(pmf: npt.ArrayLike, y: npt.ArrayLike, lower: float = 0.1,
-                          upper: float = 0.9) -> float:
-    """Share of randomised PIT values in [lower, upper], averaged over the randomisation.
+def pit_band_shares(pmf: npt.ArrayLike, y: npt.ArrayLike, lower: float = 0.1,
+                    upper: float = 0.9) -> FloatArray:
+    """Each forecast's chance that its randomised PIT falls in [lower, upper].
 
     Given the outcome, the randomised PIT is uniform on [F(y - 1), F(y)] (Czado et al. 2009),
     so the chance it falls in [lower, upper] is the overlap's share of that interval (1 or 0
-    where the interval is a point). Their mean is what :func:`pit_coverage` of
-    :func:`randomised_pit` gives on average, without the noise of one set of draws: the
-    same target (upper - lower for a calibrated forecast), estimated with less variance.
+    where the interval is a point). One value per row of ``pmf``.
     """
     _check_band(lower, upper)
     rows, single = _forecasts(pmf)
@@ -221,8 +225,43 @@ def expected_pit_coverage(pmf: npt.ArrayLike, y: npt.ArrayLike, lower: float = 0
     width = hi - lo
     overlap = np.clip(np.minimum(hi, upper) - np.maximum(lo, lower), 0.0, None)
     point = (lo >= lower) & (lo <= upper)
-    share = np.where(width > 0, overlap / np.where(width > 0, width, 1.0), point)
-    return float(np.mean(share))
+    return np.asarray(np.where(width > 0, overlap / np.where(width > 0, width, 1.0), point),
+                      dtype=float)
+
+
+def expected_pit_coverage(pmf: npt.ArrayLike, y: npt.ArrayLike, lower: float = 0.1,
+                          upper: float = 0.9) -> float:
+    """Share of randomised PIT values in [lower, upper], averaged over the randomisation: the
+    mean of :func:`pit_band_shares`. It is what :func:`pit_coverage` of
+    :func:`randomised_pit` gives on average, without the noise of one set of draws: the same
+    target (upper - lower for a calibrated forecast), estimated with less variance.
+    """
+    return float(np.mean(pit_band_shares(pmf, y, lower, upper)))
+
+
+def batch_means_se(values: npt.ArrayLike, batch: int) -> float | None:
+    """Standard error of the mean of a serially dependent series, by non-overlapping batch means.
+
+    The series is cut into consecutive batches of ``batch`` values (a partial last batch is
+    left out); the batch means of a long enough batch are nearly independent, so the
+    standard error is their standard deviation over the square root of their number
+    (Schmeiser 1982). Forecasts made on neighbouring mornings share most of their nights and
+    miss together, so a share computed over them is far less certain than the binomial
+    formula says. None with fewer than :data:`MIN_BATCHES` batches.
+
+    References
+    ----------
+    Schmeiser B (1982). Batch size effects in the analysis of simulation output. Operations
+    Research 30:556-568 (cited from memory).
+    """
+    if batch < 1:
+        raise ValueError(f"batch: needs at least 1, got {batch!r}")
+    x = np.asarray(values, dtype=float).reshape(-1)
+    count = x.size // batch
+    if count < MIN_BATCHES:
+        return None
+    means = x[: count * batch].reshape(count, batch).mean(axis=1)
+    return float(np.std(means, ddof=1) / np.sqrt(count))
 
 
 def central_interval(pmf: npt.ArrayLike, level: float = 0.8) -> tuple[int, int]:

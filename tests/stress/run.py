@@ -90,7 +90,8 @@ def table(results: dict[str, dict[str, Any]]) -> str:
     """Units x horizons: mean CRPS of Morrow and of every baseline, the best baseline and
     Morrow's ratio to it, and Morrow's randomised-PIT shares; an ``all`` row per unit."""
     head = (f"{'unit':<9}{'h':>4}{'morrow':>9}" + "".join(f"{b[:12]:>13}" for b in BASELINES)
-            + f"  {'best baseline':<17}{'ratio':>6}{'pit80':>7}{'pit95':>7}{'n':>5}")
+            + f"  {'best baseline':<17}{'ratio':>6}{'pit80':>7}{'se':>6}{'pit95':>7}{'se':>6}"
+            + f"{'n':>5}")
     lines = [head, "-" * len(head)]
     for unit, result in results.items():
         rows = [(str(h + 1), {m: v["by_horizon"][h] for m, v in result["methods"].items()})
@@ -102,13 +103,57 @@ def table(results: dict[str, dict[str, Any]]) -> str:
             lines.append(f"{unit:<9}{label:>4}{scores['morrow']['crps']:>9.3f}"
                          + "".join(f"{scores[b]['crps']:>13.3f}" for b in BASELINES)
                          + f"  {best:<17}{ratio:>6.3f}{scores['morrow']['pit_80']:>7.3f}"
-                         + f"{scores['morrow']['pit_95']:>7.3f}{scores['morrow']['n']:>5}")
+                         + f"{_se(scores['morrow'].get('pit_80_se')):>6}"
+                         + f"{scores['morrow']['pit_95']:>7.3f}"
+                         + f"{_se(scores['morrow'].get('pit_95_se')):>6}{scores['morrow']['n']:>5}")
         lines.append("")
     lines.append("CRPS: mean ranked probability score in beds (lower is better); ratio: Morrow / "
                  "best baseline at that horizon; pit80, pit95: Morrow's share of randomised PIT "
                  "in [0.1, 0.9] (target 0.80) and [0.025, 0.975] (target 0.95), averaged over "
-                 "the randomisation.")
+                 "the randomisation; se: its standard error by batch means over fortnights of "
+                 "mornings.")
+    lines.append("")
+    lines.extend(verdicts(results))
     return "\n".join(lines)
+
+
+def _se(value: float | None) -> str:
+    return "-" if value is None else f"{value:.3f}"
+
+
+# What the stress suite asks of each unit (issue 12's done-when): Morrow below every baseline
+# over horizons 1-7, no horizon more than 2% above the best baseline there, and the PIT shares
+# inside these bands.
+MAX_RATIO = 1.02
+PIT_BANDS = {"pit_80": (0.75, 0.85), "pit_95": (0.92, 0.98)}
+
+
+def verdicts(results: dict[str, dict[str, Any]]) -> list[str]:
+    """One line per unit: whether it meets the bar, and by how far each miss is, in standard
+    errors where the miss is a PIT share (a share one standard error outside its band is as
+    likely chance as a fault)."""
+    lines = []
+    for unit, result in results.items():
+        methods = result["methods"]
+        misses = []
+        best_all = min(methods[b]["all"]["crps"] for b in BASELINES)
+        if methods["morrow"]["all"]["crps"] >= best_all:
+            misses.append(f"CRPS {methods['morrow']['all']['crps']:.3f} >= best baseline "
+                          f"{best_all:.3f}")
+        for h in range(result["days"]):
+            best = min(methods[b]["by_horizon"][h]["crps"] for b in BASELINES)
+            ratio = methods["morrow"]["by_horizon"][h]["crps"] / best
+            if ratio > MAX_RATIO:
+                misses.append(f"h{h + 1} at {ratio:.3f} of the best baseline")
+        for key, (low, high) in PIT_BANDS.items():
+            share = methods["morrow"]["all"][key]
+            se = methods["morrow"]["all"].get(f"{key}_se")
+            if not low <= share <= high:
+                gap = low - share if share < low else share - high
+                far = f", {gap / se:.1f} SE" if se else ""
+                misses.append(f"{key.replace('_', '')} {share:.3f} outside {low}-{high}{far}")
+        lines.append(f"{unit:<9} " + ("meets" if not misses else "misses: " + "; ".join(misses)))
+    return lines
 
 
 def main(argv: Sequence[str] | None = None) -> int:
