@@ -107,7 +107,7 @@ def _store_done(url: str, unit: str, n: int, hits: int) -> int:
               "state": "done", "methods": {"morrow": {
                   "by_horizon": [{"n": n, "coverage_80": hits / n}],
                   "all": {"n": 7 * n, "coverage_80": 0.8, "mae_median": 1.0, "crps": 1.0,
-                          "coverage_95": 0.95, "pit_80": 0.8}}},
+                          "coverage_95": 0.95, "pit_80": 0.8, "pit_80_se": 0.031}}},
               "pit": {"morrow": [0.5] * n}}
     with db.session_scope(url) as session:
         row = BacktestRun(unit=unit, date_from=date(2026, 11, 1), date_to=date(2026, 11, 14),
@@ -135,6 +135,7 @@ def test_the_page_is_kept_and_follows_a_new_backtest(
     after = viewer.get("/units/KV-CRIT/model")
     assert builds == ["KV-CRIT", "KV-CRIT"]
     assert "census that night fell inside the 80% band of the forecast 11 times" in after.text
+    assert "80% ± 3%" in after.text  # the PIT share beside its standard error
     for term in ("CRPS", "PIT", "Concordance", "Kaplan-Meier", "BIC", "80% band"):
         assert f"<dt>{term}</dt>" in after.text
 
