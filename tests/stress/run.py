@@ -153,7 +153,30 @@ def verdicts(results: dict[str, dict[str, Any]]) -> list[str]:
                 far = f", {gap / se:.1f} SE" if se else ""
                 misses.append(f"{key.replace('_', '')} {share:.3f} outside {low}-{high}{far}")
         lines.append(f"{unit:<9} " + ("meets" if not misses else "misses: " + "; ".join(misses)))
+    chance = chance_calibrated_inside(results)
+    if chance is not None:
+        lines.append(f"A calibrated forecast with these standard errors would put every unit's "
+                     f"PIT shares inside their bands with probability {chance:.2f} (normal "
+                     f"approximation, units independent).")
     return lines
+
+
+def chance_calibrated_inside(results: dict[str, dict[str, Any]]) -> float | None:
+    """The chance that a calibrated forecast (PIT shares 0.80 and 0.95 in the long run) lands
+    all units' shares inside :data:`PIT_BANDS`, taking each share as normal around its target
+    with the standard error measured here; None where a unit has no standard error."""
+    from scipy import stats
+
+    chance = 1.0
+    for result in results.values():
+        scores = result["methods"]["morrow"]["all"]
+        for key, (low, high) in PIT_BANDS.items():
+            se = scores.get(f"{key}_se")
+            if not se:
+                return None
+            target = 0.80 if key == "pit_80" else 0.95
+            chance *= float(stats.norm.cdf(high, target, se) - stats.norm.cdf(low, target, se))
+    return chance
 
 
 def main(argv: Sequence[str] | None = None) -> int:
