@@ -39,6 +39,7 @@ import pandas as pd
 from app.forecast.los.constants import NS_PER_DAY
 from app.forecast.training_data import TooLittleHistory
 from app.state import UnitState
+from app.state.extract import extract_start_ns
 from app.state.frames import utc_ns
 from app.stats.arrivals import (
     MIN_EXPOSURE,
@@ -78,16 +79,19 @@ def _window(state: UnitState, days: int) -> tuple[date, date]:
     of admissions is complete.
 
     An extract of stays usually holds those discharged since some date, plus the stays then
-    in progress: admissions before the first recorded discharge are only the long stays
-    (left truncation), and counting them would drag the rate down. So the window starts the
-    day after the first discharge (and after the first admission).
+    in progress: admissions before the record begins are only the long stays (left
+    truncation), and counting them would drag the rate down. So the window starts the day
+    after the record begins (app/state/extract.py) and after the first admission.
     """
     last = state.as_of.tz_convert(state.tz).date() - timedelta(days=1)
     first = last - timedelta(days=days - 1)
-    for column in ("admitted_at", "discharged_at"):
-        earliest = state.stays[column].min()      # local time keeps the order of instants
-        if pd.notna(earliest):
-            first = max(first, earliest.tz_convert(state.tz).date() + timedelta(days=1))
+    earliest = state.stays["admitted_at"].min()      # local time keeps the order of instants
+    if pd.notna(earliest):
+        first = max(first, earliest.tz_convert(state.tz).date() + timedelta(days=1))
+    start = extract_start_ns(state.stays, state.as_of.value)
+    if start is not None:
+        begun = pd.Timestamp(start, tz="UTC").tz_convert(state.tz).date()
+        first = max(first, begun + timedelta(days=1))
     return first, last
 
 

@@ -11,7 +11,7 @@ Rows
     ``HORIZON_STEPS``) while the stay is in the unit and before the cut-off: the target is
     "leaves in this interval", with the time at risk in the interval (METHODS.md section 8).
     Stays in progress at the cut-off contribute their time at risk up to it, censored; none is
-    dropped. Landmarks start at the extract's start (``rows.extract_start_ns``): a stay
+    dropped. Landmarks start at the extract's start (``app.state.extract.extract_start_ns``): a stay
     admitted before it is on record only for having lasted into it, so its earlier mornings
     are left out and its later ones keep the true days in (delayed entry); the groups and the
     test's Kaplan-Meier baseline take such stays from their days in the unit then.

@@ -20,6 +20,7 @@ from app.forecast.los.constants import (
     FloatArray,
     IntArray,
 )
+from app.state.extract import extract_start_ns
 from app.state.frames import UnitState, latest_observations, utc_ns
 from app.timeutil import localize
 
@@ -196,7 +197,8 @@ class Landmarks:
     ended : ndarray of bool
         Discharged by the cut-off.
     extract_ns : int or None
-        When the extract began (:func:`extract_start_ns`); no landmark comes before it.
+        When the extract began (:func:`app.state.extract.extract_start_ns`); no landmark
+        comes before it.
     """
 
     stays: pd.DataFrame
@@ -244,25 +246,6 @@ def _stay_ends(stays: pd.DataFrame, as_of_ns: int) -> tuple[IntArray, IntArray,
     return admitted, end, ended
 
 
-def extract_start_ns(stays: pd.DataFrame, as_of_ns: int, given: int | None = None
-                     ) -> int | None:
-    """When the extract's record of stays begins: ``given``, else its first discharge known
-    at ``as_of_ns`` (None when no stay has ended yet).
-
-    An extract of stays holds those discharged since some instant plus the stays then in
-    progress, so a stay admitted before its first recorded discharge is on record only
-    because it lasted into the extract (left truncation): the reading of the arrivals' window
-    (``app.forecast.arrivals._window``). Every stay on record admitted before that instant was
-    in the unit at it (none had left yet), so conditioning such a stay on being in the unit at
-    the instant is exact even when the true start came a little earlier.
-    """
-    if given is not None:
-        return int(given)
-    discharged = utc_ns(stays["discharged_at"].dropna())
-    discharged = discharged[discharged <= as_of_ns]
-    return int(discharged.min()) if discharged.size else None
-
-
 def entry_days(admitted_ns: IntArray, days: FloatArray, start_ns: int | None) -> FloatArray:
     """Days each stay had spent in the unit when the extract began (0 for stays admitted after
     it), at most its length ``days``: the delayed entry of a left-truncated stay."""
@@ -283,8 +266,9 @@ def build_landmarks(state: UnitState, *, landmark_clock: time = LANDMARK_CLOCK,
                     names: Sequence[str] | None = None,
                     extract_start: int | None = None) -> Landmarks:
     """Landmarks of every stay of the state: each ``landmark_clock`` local time it was in the
-    unit from the extract's start (:func:`extract_start_ns`; ``extract_start`` in UTC ns if
-    given) up to ``state.as_of`` (stays still in are censored there, never dropped).
+    unit from the extract's start (:func:`app.state.extract.extract_start_ns`;
+    ``extract_start`` in UTC ns if given) up to ``state.as_of`` (stays still in are censored
+    there, never dropped).
 
     Before the extract's start only the stays that lasted into it are on record, so a landmark
     there would see long survivors only; from the start on every stay in the unit is on

@@ -58,12 +58,14 @@ class _StayTable:
 
 def _stays_at(stays: pd.DataFrame, cutoff_ns: int, extract_ns: int | None) -> _StayTable:
     """The stays admitted by ``cutoff_ns``; ``extract_ns`` is when the extract began
-    (``rows.extract_start_ns``; None: every stay seen from its admission)."""
+    (``app.state.extract.extract_start_ns``; None: every stay seen from its admission)."""
     admitted = utc_ns(stays["admitted_at"])
     discharged = utc_ns(stays["discharged_at"])
     keep = admitted <= cutoff_ns
     ended = stays["discharged_at"].notna().to_numpy() & (discharged <= cutoff_ns)
     end = np.where(ended, discharged, cutoff_ns)
+    if extract_ns is not None:   # gone before the record began: on record by exception only
+        keep &= ~(ended & (end < extract_ns))
     idx = np.flatnonzero(keep)
     days = (end[idx] - admitted[idx]) / NS_PER_DAY
     return _StayTable(idx.astype(np.int64), days, ended[idx],

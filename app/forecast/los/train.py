@@ -85,7 +85,7 @@ def train_los(state: UnitState, *, test_days: float | None = None,
         For the row sampling of very large histories and the Coxian random starts.
     extract_start : int, optional
         When the extract began (UTC ns); default its first recorded discharge
-        (``rows.extract_start_ns``). Stays admitted before it are left-truncated: their
+        (``app.state.extract.extract_start_ns``). Stays admitted before it are left-truncated: their
         landmarks start there, and the groups and the test's Kaplan-Meier baseline take them
         from their days in the unit then (delayed entry).
 
