@@ -46,7 +46,7 @@ bench: install-test
 	bash .ci/postgres with $(BIN)/python -m pytest -q tests/benchmarks -s -p no:randomly
 
 # The stress units (tests/stress/generator.py), backtested through the command line; outside CI
-# (126 mornings per unit, about 5 minutes on an idle 2-core machine). Results and the table go
+# (252 mornings per unit, about 8 minutes on an idle 2-core machine). Results and the table go
 # to stress-results/.
 stress: install-test
 	$(BIN)/python -m tests.stress.run --out stress-results
