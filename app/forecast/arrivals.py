@@ -161,12 +161,19 @@ def _quarter_hours(state: UnitState, first: date, last: date
             (wall % NS_PER_DAY) // (60 * NS_PER_MINUTE))
 
 
-def _admission_levels(state: UnitState, first: date, last: date
+def _admission_levels(state: UnitState, first: date, last: date, senders: Collection[str] = ()
                       ) -> Callable[[int], Levels] | None:
     """For :func:`app.stats.ceiling.best_ceiling`: the levels over staffed beds just before each
-    emergency admission of the local days ``first``..``last`` and on the grid, with the grid's
-    demand-days, read with a given recording-lag allowance (None: no admission with a bed
-    count)."""
+    admission of the unit's own emergency stream (not passed on by one of ``senders``) on the
+    local days ``first``..``last`` and on the grid, with the grid's demand-days, read with a
+    given recording-lag allowance (None: no admission with a bed count).
+
+    Patients passed on by another unit wait there for a bed rather than being turned away, so
+    they come in the moment one frees and never at the ceiling: counted with the unit's own
+    emergencies they make the levels just below it look busy and the ceiling itself look
+    refused (on the demo's ward, with its critical-care step-downs counted, the ceiling came
+    out at the staffed beds; from its own emergencies, one escalation bed above them, as the
+    demo's rules have it)."""
     stays = state.stays
     local_day = _local(stays["admitted_at"], state).dt.date
     inside = ((local_day >= first) & (local_day <= last)).to_numpy()
@@ -176,7 +183,7 @@ def _admission_levels(state: UnitState, first: date, last: date
     if all(b is None for b in beds):
         return None
     staffed = np.array([np.nan if b is None else float(b) for b in beds])
-    emergency = inside & (stays["admission_type"] == "emergency").to_numpy()
+    emergency = inside & emergency_mask(stays, senders).to_numpy()
     at_ns = utc_ns(stays["admitted_at"])[emergency]
     day_of = np.array([(d - first).days for d in local_day[emergency]], dtype=np.int64)
     grid_ns, grid_day, hour = _quarter_hours(state, first, last)
@@ -197,22 +204,25 @@ def _admission_levels(state: UnitState, first: date, last: date
     return levels
 
 
-def learn_ceiling(state: UnitState, first: date, last: date) -> Ceiling | None:
+def learn_ceiling(state: UnitState, first: date, last: date, senders: Collection[str] = ()
+                  ) -> Ceiling | None:
     """The unit's ceiling beyond its staffed beds on the local days ``first``..``last`` (0 if
-    it never went over) and the recording-lag allowance it is read with; None without a bed
-    count (:func:`app.stats.ceiling.best_ceiling`)."""
-    levels = _admission_levels(state, first, last)
+    it never went over) and the recording-lag allowance it is read with, from the admissions
+    of its own emergency stream (``senders``: the units whose transfers in are not part of
+    it); None without a bed count (:func:`app.stats.ceiling.best_ceiling`)."""
+    levels = _admission_levels(state, first, last, senders)
     return None if levels is None else best_ceiling(levels)
 
 
-def capacity_excess(state: UnitState, first: date, last: date) -> int | None:
+def capacity_excess(state: UnitState, first: date, last: date, senders: Collection[str] = ()
+                    ) -> int | None:
     """The unit's ceiling beyond its staffed beds on the local days ``first``..``last`` (0 if it
     never went over); None without a bed count.
 
     Learnt from the emergency admission chance by occupancy level (:func:`learn_ceiling`), not
     from the single largest overflow, which one night of escalation beds would loosen for
     good, and with the occupancy read allowing for discharges recorded late."""
-    found = learn_ceiling(state, first, last)
+    found = learn_ceiling(state, first, last, senders)
     return None if found is None else found.excess
 
 
@@ -312,7 +322,7 @@ def train_arrivals(state: UnitState, units: Collection[str] = (),
             f"(after the first discharge) before {state.as_of:%Y-%m-%d}; at least "
             f"{MIN_WINDOW_DAYS} are needed to learn the weekday pattern of arrivals")
     profile = hourly_profile(admitted[emergency].dt.hour)
-    ceiling = learn_ceiling(state, first, last) if first <= last else None
+    ceiling = learn_ceiling(state, first, last, senders) if first <= last else None
     excess = None if ceiling is None else ceiling.excess
     lag = 0 if ceiling is None else ceiling.lag_minutes
     exposure = None
