@@ -161,19 +161,12 @@ def _quarter_hours(state: UnitState, first: date, last: date
             (wall % NS_PER_DAY) // (60 * NS_PER_MINUTE))
 
 
-def _admission_levels(state: UnitState, first: date, last: date, senders: Collection[str] = ()
+def _admission_levels(state: UnitState, first: date, last: date, stream: pd.Series
                       ) -> Callable[[int], Levels] | None:
     """For :func:`app.stats.ceiling.best_ceiling`: the levels over staffed beds just before each
-    admission of the unit's own emergency stream (not passed on by one of ``senders``) on the
-    local days ``first``..``last`` and on the grid, with the grid's demand-days, read with a
-    given recording-lag allowance (None: no admission with a bed count).
-
-    Patients passed on by another unit wait there for a bed rather than being turned away, so
-    they come in the moment one frees and never at the ceiling: counted with the unit's own
-    emergencies they make the levels just below it look busy and the ceiling itself look
-    refused (on the demo's ward, with its critical-care step-downs counted, the ceiling came
-    out at the staffed beds; from its own emergencies, one escalation bed above them, as the
-    demo's rules have it)."""
+    admission of one stream (``stream``: a mask of the stays) on the local days
+    ``first``..``last`` and on the grid, with the grid's demand-days, read with a given
+    recording-lag allowance (None: no admission with a bed count)."""
     stays = state.stays
     local_day = _local(stays["admitted_at"], state).dt.date
     inside = ((local_day >= first) & (local_day <= last)).to_numpy()
@@ -183,7 +176,7 @@ def _admission_levels(state: UnitState, first: date, last: date, senders: Collec
     if all(b is None for b in beds):
         return None
     staffed = np.array([np.nan if b is None else float(b) for b in beds])
-    emergency = inside & emergency_mask(stays, senders).to_numpy()
+    emergency = inside & stream.to_numpy()
     at_ns = utc_ns(stays["admitted_at"])[emergency]
     day_of = np.array([(d - first).days for d in local_day[emergency]], dtype=np.int64)
     grid_ns, grid_day, hour = _quarter_hours(state, first, last)
@@ -204,13 +197,23 @@ def _admission_levels(state: UnitState, first: date, last: date, senders: Collec
     return levels
 
 
-def learn_ceiling(state: UnitState, first: date, last: date, senders: Collection[str] = ()
-                  ) -> Ceiling | None:
+def learn_ceiling(state: UnitState, first: date, last: date, senders: Collection[str] = (),
+                  *, passed_on: bool = False) -> Ceiling | None:
     """The unit's ceiling beyond its staffed beds on the local days ``first``..``last`` (0 if
-    it never went over) and the recording-lag allowance it is read with, from the admissions
-    of its own emergency stream (``senders``: the units whose transfers in are not part of
-    it); None without a bed count (:func:`app.stats.ceiling.best_ceiling`)."""
-    levels = _admission_levels(state, first, last, senders)
+    it never went over) and the recording-lag allowance it is read with; None without a bed
+    count (:func:`app.stats.ceiling.best_ceiling`).
+
+    Read from the admissions of the unit's own emergency stream (``senders``: the units whose
+    transfers in are not part of it), or with ``passed_on`` from those transfers in. The two
+    are kept apart because they meet a full unit differently: an emergency is turned away,
+    a patient passed on waits in the unit that has them and comes in the moment a bed frees,
+    never at the ceiling. Counted together, the transfers make the levels just below the
+    ceiling look busy and the ceiling itself look refused: on the demo's ward, with its
+    critical-care step-downs counted, the ceiling came out at the staffed beds; from its own
+    emergencies, one escalation bed above them, and from the step-downs, the staffed beds
+    (they never take an escalation bed), as the demo's rules have it."""
+    stream = (passed_on_mask if passed_on else emergency_mask)(state.stays, senders)
+    levels = _admission_levels(state, first, last, stream)
     return None if levels is None else best_ceiling(levels)
 
 
@@ -324,6 +327,8 @@ def train_arrivals(state: UnitState, units: Collection[str] = (),
     profile = hourly_profile(admitted[emergency].dt.hour)
     ceiling = learn_ceiling(state, first, last, senders) if first <= last else None
     excess = None if ceiling is None else ceiling.excess
+    waiting = (learn_ceiling(state, first, last, senders, passed_on=True)
+               if ceiling is not None and came.any() else None)
     lag = 0 if ceiling is None else ceiling.lag_minutes
     exposure = None
     if excess is not None:
@@ -359,6 +364,9 @@ def train_arrivals(state: UnitState, units: Collection[str] = (),
         },
         "transfers_in": _transfer_streams(state, came, first, last),
         "capacity": {"excess_beds": excess,
+                     # Beds beyond staffed that patients passed on by other units come into
+                     # (None: as the unit's own emergencies; see learn_ceiling).
+                     "passed_on_excess_beds": None if waiting is None else waiting.excess,
                      # The allowance for late recording the unit's fullness is read with.
                      "recording_lag_minutes": None if excess is None else lag,
                      "open_share": None if exposure is None else float(np.mean(exposure))},
@@ -584,6 +592,13 @@ def excess_beds(arrivals: Mapping[str, Any]) -> int | None:
     trained before the ceiling was learnt have none and keep their admitted rates)."""
     value = arrivals.get("capacity", {}).get("excess_beds")
     return None if value is None else int(value)
+
+
+def passed_on_excess_beds(arrivals: Mapping[str, Any]) -> int | None:
+    """Beds beyond staffed that patients passed on by other units come into at most: their
+    own ceiling where it was learnt, else the unit's (:func:`excess_beds`)."""
+    value = arrivals.get("capacity", {}).get("passed_on_excess_beds")
+    return excess_beds(arrivals) if value is None else int(value)
 
 
 def recording_lag(arrivals: Mapping[str, Any]) -> int:
