@@ -353,7 +353,7 @@ def train_arrivals(state: UnitState, units: Collection[str] = (),
         # change of level the local level removes, and misses the level's own error): day by
         # day, and shared by the days forecast from one morning (app/stats/demand_spread.py).
         rate = replace(rate, alpha=choice.alpha, tau2=choice.tau2)
-    elective = ~emergency
+    elective = stays["admission_type"] == "elective"
     return {
         "emergency": {
             "rate": rate.to_dict(),
