@@ -161,12 +161,12 @@ def _quarter_hours(state: UnitState, first: date, last: date
             (wall % NS_PER_DAY) // (60 * NS_PER_MINUTE))
 
 
-def _admission_levels(state: UnitState, first: date, last: date, stream: pd.Series
+def _admission_levels(state: UnitState, first: date, last: date
                       ) -> Callable[[int], Levels] | None:
     """For :func:`app.stats.ceiling.best_ceiling`: the levels over staffed beds just before each
-    admission of one stream (``stream``: a mask of the stays) on the local days
-    ``first``..``last`` and on the grid, with the grid's demand-days, read with a given
-    recording-lag allowance (None: no admission with a bed count)."""
+    emergency admission of the local days ``first``..``last`` and on the grid, with the grid's
+    demand-days, read with a given recording-lag allowance (None: no admission with a bed
+    count)."""
     stays = state.stays
     local_day = _local(stays["admitted_at"], state).dt.date
     inside = ((local_day >= first) & (local_day <= last)).to_numpy()
@@ -176,7 +176,7 @@ def _admission_levels(state: UnitState, first: date, last: date, stream: pd.Seri
     if all(b is None for b in beds):
         return None
     staffed = np.array([np.nan if b is None else float(b) for b in beds])
-    emergency = inside & stream.to_numpy()
+    emergency = inside & (stays["admission_type"] == "emergency").to_numpy()
     at_ns = utc_ns(stays["admitted_at"])[emergency]
     day_of = np.array([(d - first).days for d in local_day[emergency]], dtype=np.int64)
     grid_ns, grid_day, hour = _quarter_hours(state, first, last)
@@ -197,35 +197,22 @@ def _admission_levels(state: UnitState, first: date, last: date, stream: pd.Seri
     return levels
 
 
-def learn_ceiling(state: UnitState, first: date, last: date, senders: Collection[str] = (),
-                  *, passed_on: bool = False) -> Ceiling | None:
+def learn_ceiling(state: UnitState, first: date, last: date) -> Ceiling | None:
     """The unit's ceiling beyond its staffed beds on the local days ``first``..``last`` (0 if
     it never went over) and the recording-lag allowance it is read with; None without a bed
-    count (:func:`app.stats.ceiling.best_ceiling`).
-
-    Read from the admissions of the unit's own emergency stream (``senders``: the units whose
-    transfers in are not part of it), or with ``passed_on`` from those transfers in. The two
-    are kept apart because they meet a full unit differently: an emergency is turned away,
-    a patient passed on waits in the unit that has them and comes in the moment a bed frees,
-    never at the ceiling. Counted together, the transfers make the levels just below the
-    ceiling look busy and the ceiling itself look refused: on the demo's ward, with its
-    critical-care step-downs counted, the ceiling came out at the staffed beds; from its own
-    emergencies, one escalation bed above them, and from the step-downs, the staffed beds
-    (they never take an escalation bed), as the demo's rules have it."""
-    stream = (passed_on_mask if passed_on else emergency_mask)(state.stays, senders)
-    levels = _admission_levels(state, first, last, stream)
+    count (:func:`app.stats.ceiling.best_ceiling`)."""
+    levels = _admission_levels(state, first, last)
     return None if levels is None else best_ceiling(levels)
 
 
-def capacity_excess(state: UnitState, first: date, last: date, senders: Collection[str] = ()
-                    ) -> int | None:
+def capacity_excess(state: UnitState, first: date, last: date) -> int | None:
     """The unit's ceiling beyond its staffed beds on the local days ``first``..``last`` (0 if it
     never went over); None without a bed count.
 
     Learnt from the emergency admission chance by occupancy level (:func:`learn_ceiling`), not
     from the single largest overflow, which one night of escalation beds would loosen for
     good, and with the occupancy read allowing for discharges recorded late."""
-    found = learn_ceiling(state, first, last, senders)
+    found = learn_ceiling(state, first, last)
     return None if found is None else found.excess
 
 
@@ -325,10 +312,8 @@ def train_arrivals(state: UnitState, units: Collection[str] = (),
             f"(after the first discharge) before {state.as_of:%Y-%m-%d}; at least "
             f"{MIN_WINDOW_DAYS} are needed to learn the weekday pattern of arrivals")
     profile = hourly_profile(admitted[emergency].dt.hour)
-    ceiling = learn_ceiling(state, first, last, senders) if first <= last else None
+    ceiling = learn_ceiling(state, first, last) if first <= last else None
     excess = None if ceiling is None else ceiling.excess
-    waiting = (learn_ceiling(state, first, last, senders, passed_on=True)
-               if ceiling is not None and came.any() else None)
     lag = 0 if ceiling is None else ceiling.lag_minutes
     exposure = None
     if excess is not None:
@@ -364,9 +349,6 @@ def train_arrivals(state: UnitState, units: Collection[str] = (),
         },
         "transfers_in": _transfer_streams(state, came, first, last),
         "capacity": {"excess_beds": excess,
-                     # Beds beyond staffed that patients passed on by other units come into
-                     # (None: as the unit's own emergencies; see learn_ceiling).
-                     "passed_on_excess_beds": None if waiting is None else waiting.excess,
                      # The allowance for late recording the unit's fullness is read with.
                      "recording_lag_minutes": None if excess is None else lag,
                      "open_share": None if exposure is None else float(np.mean(exposure))},
@@ -592,13 +574,6 @@ def excess_beds(arrivals: Mapping[str, Any]) -> int | None:
     trained before the ceiling was learnt have none and keep their admitted rates)."""
     value = arrivals.get("capacity", {}).get("excess_beds")
     return None if value is None else int(value)
-
-
-def passed_on_excess_beds(arrivals: Mapping[str, Any]) -> int | None:
-    """Beds beyond staffed that patients passed on by other units come into at most: their
-    own ceiling where it was learnt, else the unit's (:func:`excess_beds`)."""
-    value = arrivals.get("capacity", {}).get("passed_on_excess_beds")
-    return excess_beds(arrivals) if value is None else int(value)
 
 
 def recording_lag(arrivals: Mapping[str, Any]) -> int:

@@ -24,7 +24,6 @@ from app.forecast.arrivals import (
     emergency_demand,
     emergency_rate,
     excess_beds,
-    passed_on_excess_beds,
     recent_days_read,
     train_arrivals,
     unbooked_means,
@@ -364,9 +363,7 @@ def forecast_backdrop(state: UnitState, record: ModelRecord, *, days: int = DEFA
     if passed is not None:
         from app.forecast.transfers import fallback_means
 
-        passed = replace(passed, fallback_means=fallback_means(streams, census_at),
-                         limits=tuple(_limits(beds, passed_on_excess_beds(arrivals),
-                                              len(stay_ids))))
+        passed = replace(passed, fallback_means=fallback_means(streams, census_at))
     return Backdrop(unit=state.unit, as_of=state.as_of, stay_ids=stay_ids, los=los,
                     instants=instants, census_at=census_at, local_days=local_days, beds=beds,
                     booked=booked, streams=streams, limits=limits, draws=draws, losses=loss_draws,

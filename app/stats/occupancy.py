@@ -444,8 +444,7 @@ def with_current(p_current: npt.ArrayLike, others: Newcomers, beds: Sequence[int
             components[name] += value
         passed_mean = None
         if passed is not None:
-            room = limit if passed.limits is None else passed.limits[k]
-            pmf, passed_mean = waiting_when_full(pmf, passed.pmf(k), room)
+            pmf, passed_mean = waiting_when_full(pmf, passed.pmf(k), limit)
             components["emergency"] += passed_mean
         quantiles = dict(zip((f"{q:g}" for q in QUANTILE_LEVELS),
                              (int(v) for v in pmf_quantile(pmf, QUANTILE_LEVELS)), strict=True))

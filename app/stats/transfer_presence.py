@@ -144,10 +144,6 @@ class PassedOn:
     future: tuple[tuple[FloatArray, float | None], ...] = ()
     future_unit: tuple[str, ...] = ()
     fallback_means: Mapping[str, FloatArray] = field(default_factory=dict)
-    # The most patients the unit holds when these come in, per instant (None: the unit's own
-    # ceiling): a patient passed on may wait for a staffed bed where an emergency would take
-    # an escalation bed.
-    limits: tuple[int | None, ...] | None = None
 
     @property
     def n_instants(self) -> int:
