@@ -151,7 +151,8 @@ def verdicts(results: dict[str, dict[str, Any]]) -> list[str]:
             if not low <= share <= high:
                 gap = low - share if share < low else share - high
                 far = f", {gap / se:.1f} SE" if se else ""
-                misses.append(f"{key.replace('_', '')} {share:.3f} outside {low}-{high}{far}")
+                # Four decimals: 0.7498 is outside 0.75-0.85, which three would hide.
+                misses.append(f"{key.replace('_', '')} {share:.4f} outside {low}-{high}{far}")
         lines.append(f"{unit:<9} " + ("meets" if not misses else "misses: " + "; ".join(misses)))
     chance = chance_calibrated_inside(results)
     if chance is not None:

@@ -32,7 +32,7 @@ def test_verdict_names_each_miss_and_how_far_a_share_is_in_standard_errors() -> 
     })
     assert lines[0].split() == ["GOOD", "meets"]
     # h2 is 1.3 / 1.25 = 1.04 of the best baseline; PIT80 0.05 under 0.75 is 2.5 SE.
-    assert "h2 at 1.040" in lines[1] and "pit80 0.700 outside 0.75-0.85, 2.5 SE" in lines[1]
+    assert "h2 at 1.040" in lines[1] and "pit80 0.7000 outside 0.75-0.85, 2.5 SE" in lines[1]
     assert "CRPS" not in lines[1]  # 1.15 over all horizons is below the baselines' 1.225
     # Without every standard error there is no chance to state.
     assert not any("calibrated" in line for line in lines)
