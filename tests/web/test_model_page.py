@@ -136,6 +136,7 @@ def test_the_page_is_kept_and_follows_a_new_backtest(
     assert builds == ["KV-CRIT", "KV-CRIT"]
     assert "census that night fell inside the 80% band of the forecast 11 times" in after.text
     assert "80% ± 3%" in after.text  # the PIT share beside its standard error
+    assert "too short for one" not in after.text
     for term in ("CRPS", "PIT", "Concordance", "Kaplan-Meier", "BIC", "80% band"):
         assert f"<dt>{term}</dt>" in after.text
 
@@ -201,6 +202,8 @@ def test_the_page_starts_a_backtest_process_shows_progress_and_its_result(
     final = manager.get("/units/KV-CRIT/model")
     assert "refresh" not in final.headers
     assert "Of 14 mornings replayed from 2026-11-09 to 2026-11-22" in final.text
+    # One fortnight of mornings gives no standard error, and the page says why.
+    assert "This backtest is too short for one" in final.text
 
 
 def test_a_running_training_run_is_cancelled_at_its_next_beat(db_url: str) -> None:
