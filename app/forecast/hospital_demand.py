@@ -17,4 +17,3 @@ def hospital_season_at(states: Iterable[UnitState], units: Collection[str]
     all known at the same instant); None where it cannot be learnt (too short a history,
     fewer than two units)."""
     return pooled_season([emergency_counts(state, units) for state in states])
-

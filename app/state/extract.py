@@ -25,11 +25,10 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
-from app.state.frames import utc_ns
+from app.state.frames import NS_PER_DAY, utc_ns
 
 __all__ = ["LONGEST_GAP", "STEADY_RUN", "extract_start_ns"]
 
-NS_PER_DAY = 86_400 * 10**9
 # A record is steady once this many discharges follow each other with no gap longer than
 # LONGEST_GAP. A unit of a few beds discharges several patients a fortnight; two weeks with
 # none at all is a gap in the record, not in the unit. Common practice, no source.

@@ -164,6 +164,10 @@ class UnitState:
         return b.take(np.flatnonzero(keep)).reset_index(drop=True)
 
 
+# Nanoseconds in a day, the unit of :func:`utc_ns` instants.
+NS_PER_DAY = 86_400 * 10**9
+
+
 def utc_ns(values: Any) -> np.ndarray:
     """UTC instants as int64 nanoseconds (NaT: the least int64; naive times read as UTC). A
     column of the state's frames is datetime64 already and is read as it is; other values

@@ -175,7 +175,7 @@ def chance_calibrated_inside(results: dict[str, dict[str, Any]]) -> float | None
             se = scores.get(f"{key}_se")
             if not se:
                 return None
-            target = 0.80 if key == "pit_80" else 0.95
+            target = (low + high) / 2   # 0.80 and 0.95: the bands are centred on them
             chance *= float(stats.norm.cdf(high, target, se) - stats.norm.cdf(low, target, se))
     return chance
 

@@ -7,13 +7,14 @@ from datetime import time
 import numpy as np
 import numpy.typing as npt
 
+from app.state.frames import NS_PER_DAY as NS_PER_DAY  # one definition; the model reads it here
+
 FloatArray = npt.NDArray[np.float64]
 IntArray = npt.NDArray[np.int64]
 
 LANDMARK_CLOCK = time(8, 0)
 HORIZON_STEPS = 14
 PAYLOAD_FORMAT = 1
-NS_PER_DAY = 86_400 * 10**9
 NS_PER_HOUR = 3_600 * 10**9
 COVARIATES = ("admission_type", "age", "sex", "specialty", "source")
 # Trade names of published scores, for the rule text.
