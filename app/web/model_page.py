@@ -41,7 +41,7 @@ def _tree_nodes(los: LosModel) -> list[dict[str, Any]]:
     out: list[dict[str, Any]] = []
 
     def visit(node: int, depth: int) -> None:
-        rate = float(tree.value[node])
+        rate = float(tree.value[node]) * los.scale     # as the forecast uses it
         leaf = bool(tree.left[node] < 0)
         out.append({"node": node, "depth": depth, "leaf": leaf,
                     "rule": tree.rule(node), "size": float(tree.weight[node]),
@@ -82,6 +82,7 @@ def _model_part(los: LosModel, model_id: str, trained_until: Any,
                   "window": payload.get("window"), "uses": payload["los"].get("uses", {})},
         "metrics": payload.get("metrics", {}), "nodes": _tree_nodes(los),
         "groups": _groups(los), "arrivals": payload.get("arrivals", {}),
+        "hazard_scale": payload["los"].get("hazard_scale"),
         "routing": _routing(los, payload),
     }
 

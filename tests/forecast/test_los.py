@@ -284,6 +284,25 @@ def test_per_stay_forecasts(states: dict[str, UnitState], payloads: dict[str, di
 
 
 @pytest.mark.slow
+def test_the_stored_scale_raises_the_trees_survival_to_its_power(
+        states: dict[str, UnitState], payloads: dict[str, dict]) -> None:
+    # By hand: every rate times c is every cumulative hazard times c, so each current stay's
+    # chance of being in is the unscaled one to the power c, at every census instant.
+    for unit, payload in payloads.items():
+        stored = payload["los"]["hazard_scale"]
+        assert stored["landmarks"] >= 200 and 0.5 <= stored["value"] <= 2.0
+        assert stored["gain_per_landmark"] >= 0.0
+        state = states[unit]
+        instants = census_instants_after(state.as_of.to_pydatetime(), state.census_time,
+                                         state.tz, 7)
+        model = LosModel.from_payload(payload)
+        assert model.scale == stored["value"]
+        scaled = predict_stays(model, state, instants).p_present
+        raw = predict_stays(replace(model, scale=1.0), state, instants).p_present
+        np.testing.assert_allclose(scaled, raw ** stored["value"], rtol=1e-9, atol=1e-12)
+
+
+@pytest.mark.slow
 def test_payload_is_strict_json_and_describes_the_model(payloads: dict[str, dict]) -> None:
     for payload in payloads.values():
         text = json.dumps(payload, allow_nan=False)

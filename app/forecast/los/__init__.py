@@ -23,6 +23,10 @@ Model
     every patient, and the tree's rules are about the patient.
     P(still in at census instant k) = exp(-sum of rate x profile exposure over the intervals).
     Leaves must hold a share of the stays (not only of the rows: a stay's rows are near copies).
+Scale
+    One number c multiplies every rate of the stored tree, fitted by maximum likelihood on the
+    tree's own forecasts from the landmarks of the last half year (``calibration``): a current
+    stay's chance of being in is S^c. The test metrics are the tree's as fitted.
 Groups
     A log-rank tree on admission covariates (``app.stats.stay_groups``), each leaf with its
     Kaplan-Meier curve and a BIC-chosen Coxian: used for stays still to come and for the tail

@@ -15,6 +15,7 @@ import numpy.typing as npt
 import pandas as pd
 
 from app.bounded_cache import BoundedCache
+from app.forecast.los.calibration import HazardScale
 from app.forecast.los.constants import NS_PER_DAY, PAYLOAD_FORMAT, FloatArray, IntArray
 from app.forecast.los.design import Design
 from app.forecast.los.rows import Landmarks, _local_days, _localize, forecast_bounds
@@ -42,6 +43,8 @@ class LosModel:
     groups: StayGroups
     census_time: time
     horizon: int
+    # Every rate of the tree times this (app/forecast/los/calibration.py; 1: as fitted).
+    scale: float = 1.0
 
     @classmethod
     def from_payload(cls, payload: Mapping[str, Any]) -> LosModel:
@@ -53,7 +56,8 @@ class LosModel:
         return cls(design=Design.from_dict(los["design"]),
                    hazard=HazardTreeModel.from_dict(los["hazard"]),
                    groups=StayGroups.from_dict(los["groups"]), census_time=time(hh, mm),
-                   horizon=int(los["horizon_steps"]))
+                   horizon=int(los["horizon_steps"]),
+                   scale=HazardScale.from_dict(los.get("hazard_scale")).value)
 
     @classmethod
     def of(cls, payload: Mapping[str, Any]) -> LosModel:
@@ -79,7 +83,7 @@ class LosModel:
         x = self.design.matrix(covariates[lm], start_days, k,
                                {key: v[lm] for key, v in observed.items()})
         leaf = self.hazard.leaf(x).reshape(n, steps)
-        rates = self.hazard.tree.value[leaf]
+        rates = self.hazard.tree.value[leaf] * self.scale
         return _Curves(self, tz, bounds_ns, bounds_local, rates, leaf, days_in, covariates, x)
 
 

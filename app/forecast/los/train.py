@@ -12,6 +12,14 @@ from zoneinfo import ZoneInfo
 import numpy as np
 import pandas as pd
 
+from app.forecast.los.calibration import (
+    MAX_LANDMARKS,
+    STEPS,
+    WINDOW_DAYS,
+    HazardScale,
+    fit_hazard_scale,
+    outcome_steps,
+)
 from app.forecast.los.clock_choice import choose_newcomer_clock
 from app.forecast.los.constants import (
     HORIZON_STEPS,
@@ -24,8 +32,8 @@ from app.forecast.los.constants import (
 )
 from app.forecast.los.design import make_design
 from app.forecast.los.metrics import _test_metrics
-from app.forecast.los.model import LosModel
-from app.forecast.los.rows import build_landmarks, interval_rows, observation_names
+from app.forecast.los.model import LosModel, _landmark_curves
+from app.forecast.los.rows import Landmarks, build_landmarks, interval_rows, observation_names
 from app.forecast.los.selection import (
     _fit_groups,
     _fit_hazard,
@@ -167,6 +175,8 @@ def train_los(state: UnitState, *, test_days: float | None = None,
                                            full.extract_ns)
     groups = _fit_groups(design, state.stays, until_ns, group_params, seed, full.extract_ns,
                          clock=(hazard.profile, tz) if newcomer_clock["chosen"] else None)
+    scale = _hazard_scale(LosModel(design, hazard, groups, state.census_time, HORIZON_STEPS),
+                          full, until_ns, tz, seed)
     metrics["train_seconds"] = timer.perf_counter() - clock_start
     metrics["training_rows"] = int(len(rows.event))
     payload = {
@@ -185,6 +195,7 @@ def train_los(state: UnitState, *, test_days: float | None = None,
             "leaf_rules": {str(int(n)): hazard.tree.rule(int(n))
                            for n in hazard.tree.leaves},
             "groups": groups.to_dict(),
+            "hazard_scale": scale.to_dict(),
             "selection": {"hazard": {"chosen": params, "grid": grid},
                           "ensemble": ({"chosen": ensemble, "grid": ensemble_grid}
                                        if ensemble is not None else None),
@@ -194,6 +205,20 @@ def train_los(state: UnitState, *, test_days: float | None = None,
         },
     }
     return _json_safe(payload)
+
+
+def _hazard_scale(model: LosModel, landmarks: Landmarks, until_ns: int, tz: ZoneInfo,
+                  seed: int) -> HazardScale:
+    """The scale on the tree's rates fitted on its forecasts from the landmarks of the last
+    ``WINDOW_DAYS`` (app/forecast/los/calibration.py)."""
+    recent = landmarks.subset(landmarks.at_ns >= until_ns - WINDOW_DAYS * NS_PER_DAY)
+    recent = _sample_landmarks(recent, MAX_LANDMARKS, np.random.default_rng([seed, 2]))
+    if recent.size == 0:
+        return HazardScale()
+    curves = _landmark_curves(model, recent, tz, STEPS)
+    bounds = curves.bounds_ns[:, : STEPS + 1]
+    left, seen = outcome_steps(recent.end_ns, recent.ended, bounds)
+    return fit_hazard_scale(curves.survival(bounds[:, 1:]), left, seen)
 
 
 def _json_safe(value: Any) -> Any:
