@@ -239,5 +239,5 @@ def test_the_leaving_list_highlights_by_the_stated_level(browser, served) -> Non
         payload = json.loads(session.scalars(select(TrainedModel.payload).where(
             TrainedModel.unit == UNIT)).first())
     extra = payload["arrivals"]["capacity"]["excess_beds"]
-    assert f"held up to {extra} patient" in page.inner_text("#ceiling-note")
+    assert f"once it holds {extra} patient" in page.inner_text("#ceiling-note")
     shot(page, "alerts-leaving-list")
