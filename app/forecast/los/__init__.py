@@ -26,7 +26,8 @@ Model
 Scale
     One number c multiplies every rate of the stored tree, fitted by maximum likelihood on the
     tree's own forecasts from the landmarks of the last half year (``calibration``): a current
-    stay's chance of being in is S^c. The test metrics are the tree's as fitted.
+    stay's chance of being in is S^c. The test period scores the tree with its own scale,
+    fitted the same way on the training period.
 Groups
     A log-rank tree on admission covariates (``app.stats.stay_groups``), each leaf with its
     Kaplan-Meier curve and a BIC-chosen Coxian: used for stays still to come and for the tail

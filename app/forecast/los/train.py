@@ -5,6 +5,7 @@ from __future__ import annotations
 import math
 import time as timer
 from collections.abc import Mapping
+from dataclasses import replace
 from datetime import UTC, datetime, time
 from typing import Any
 from zoneinfo import ZoneInfo
@@ -153,6 +154,9 @@ def train_los(state: UnitState, *, test_days: float | None = None,
         groups_t = _fit_groups(design_t, state.stays, test_from, group_params, seed,
                                full.extract_ns)
         model_t = LosModel(design_t, hazard_t, groups_t, state.census_time, HORIZON_STEPS)
+        # Scored as it would have been used: its own scale, fitted on the training period.
+        model_t = replace(model_t, scale=_hazard_scale(model_t, train_lm, test_from, tz,
+                                                       seed).value)
         test_lm = _sample_landmarks(full.subset(full.at_ns >= test_from), MAX_TEST_LANDMARKS,
                                     rng)
         metrics.update({"test_from": _iso(test_from, tz), "test_to": _iso(until_ns, tz)})
