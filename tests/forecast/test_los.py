@@ -300,6 +300,12 @@ def test_the_stored_scale_raises_the_trees_survival_to_its_power(
         scaled = predict_stays(model, state, instants).p_present
         raw = predict_stays(replace(model, scale=1.0), state, instants).p_present
         np.testing.assert_allclose(scaled, raw ** stored["value"], rtol=1e-9, atol=1e-12)
+        # The model page shows each node's rate as the forecast uses it.
+        from app.web.model_page import _tree_nodes
+
+        for node in _tree_nodes(model):
+            rate = float(model.hazard.tree.value[node["node"]]) * stored["value"]
+            assert node["p_leave_day"] == pytest.approx(1 - np.exp(-rate), rel=1e-12)
 
 
 @pytest.mark.slow
