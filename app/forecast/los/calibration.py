@@ -40,6 +40,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
 import numpy.typing as npt
@@ -133,3 +134,12 @@ def fit_hazard_scale(survival: npt.ArrayLike, left: npt.ArrayLike, seen: npt.Arr
                                      options={"xatol": 1e-4})
     at_one = _neg_log_lik(0.0, s, j, m)
     return HazardScale(float(math.exp(found.x)), n, float((at_one - found.fun) / n))
+
+
+def scale_on(curves: Any, landmarks: Any) -> HazardScale:
+    """The scale fitted on a model's forecasts from ``landmarks`` (``curves``: its curves
+    from them over at least ``STEPS`` census intervals,
+    ``app.forecast.los.model._landmark_curves``), each landmark followed to its outcome."""
+    bounds = curves.bounds_ns[:, : STEPS + 1]
+    left, seen = outcome_steps(landmarks.end_ns, landmarks.ended, bounds)
+    return fit_hazard_scale(curves.survival(bounds[:, 1:]), left, seen)

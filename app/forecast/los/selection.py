@@ -13,6 +13,7 @@ import numpy as np
 import numpy.typing as npt
 import pandas as pd
 
+from app.forecast.los.calibration import MAX_LANDMARKS, WINDOW_DAYS
 from app.forecast.los.constants import (
     DEPTH_GRID,
     GROUP_DEPTH_GRID,
@@ -85,6 +86,13 @@ def _sample_landmarks(landmarks: Landmarks, limit: int, rng: np.random.Generator
     keep = np.zeros(landmarks.size, dtype=bool)
     keep[rng.choice(landmarks.size, size=limit, replace=False)] = True
     return landmarks.subset(keep)
+
+
+def recent_landmarks(landmarks: Landmarks, until_ns: int, seed: int) -> Landmarks:
+    """The landmarks a model's rate scale is fitted on: those of the last ``WINDOW_DAYS``
+    before ``until_ns``, at most ``MAX_LANDMARKS`` (sampled; app/forecast/los/calibration.py)."""
+    recent = landmarks.subset(landmarks.at_ns >= until_ns - WINDOW_DAYS * NS_PER_DAY)
+    return _sample_landmarks(recent, MAX_LANDMARKS, np.random.default_rng([seed, 2]))
 
 
 def _fit_hazard(design: Design, landmarks: Landmarks, rows: IntervalRows, *, depth: int,

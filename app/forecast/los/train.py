@@ -13,14 +13,7 @@ from zoneinfo import ZoneInfo
 import numpy as np
 import pandas as pd
 
-from app.forecast.los.calibration import (
-    MAX_LANDMARKS,
-    STEPS,
-    WINDOW_DAYS,
-    HazardScale,
-    fit_hazard_scale,
-    outcome_steps,
-)
+from app.forecast.los.calibration import STEPS, HazardScale, scale_on
 from app.forecast.los.clock_choice import choose_newcomer_clock
 from app.forecast.los.constants import (
     HORIZON_STEPS,
@@ -44,6 +37,7 @@ from app.forecast.los.selection import (
     _select_groups,
     _select_hazard,
     _validation_split,
+    recent_landmarks,
 )
 from app.forecast.training_data import (
     TooLittleHistory,
@@ -162,7 +156,7 @@ def train_los(state: UnitState, *, test_days: float | None = None,
         metrics.update({"test_from": _iso(test_from, tz), "test_to": _iso(until_ns, tz)})
         if test_lm.size:
             metrics.update(_test_metrics(model_t, train_lm, train_rows, test_lm, tz,
-                                         ensemble))
+                                         ensemble, test_from))
         if ensemble is not None:
             metrics["ensemble_iterations"] = ensemble["iterations"]
             metrics["ensemble_settings"] = {k: v for k, v in ensemble.items()
@@ -214,15 +208,11 @@ def train_los(state: UnitState, *, test_days: float | None = None,
 def _hazard_scale(model: LosModel, landmarks: Landmarks, until_ns: int, tz: ZoneInfo,
                   seed: int) -> HazardScale:
     """The scale on the tree's rates fitted on its forecasts from the landmarks of the last
-    ``WINDOW_DAYS`` (app/forecast/los/calibration.py)."""
-    recent = landmarks.subset(landmarks.at_ns >= until_ns - WINDOW_DAYS * NS_PER_DAY)
-    recent = _sample_landmarks(recent, MAX_LANDMARKS, np.random.default_rng([seed, 2]))
+    half year before ``until_ns`` (app/forecast/los/calibration.py)."""
+    recent = recent_landmarks(landmarks, until_ns, seed)
     if recent.size == 0:
         return HazardScale()
-    curves = _landmark_curves(model, recent, tz, STEPS)
-    bounds = curves.bounds_ns[:, : STEPS + 1]
-    left, seen = outcome_steps(recent.end_ns, recent.ended, bounds)
-    return fit_hazard_scale(curves.survival(bounds[:, 1:]), left, seen)
+    return scale_on(_landmark_curves(model, recent, tz, STEPS), recent)
 
 
 def _json_safe(value: Any) -> Any:
