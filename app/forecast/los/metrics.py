@@ -10,7 +10,7 @@ from zoneinfo import ZoneInfo
 import numpy as np
 import numpy.typing as npt
 
-from app.forecast.los.calibration import STEPS, scale_on
+from app.forecast.los.calibration import scale_on
 from app.forecast.los.constants import (
     HORIZON_STEPS,
     MAX_CENSORING_SAMPLE,
@@ -22,13 +22,7 @@ from app.forecast.los.constants import (
 from app.forecast.los.design import _row_matrix
 from app.forecast.los.model import LosModel, _Curves, _landmark_curves
 from app.forecast.los.rows import IntervalRows, Landmarks, _interval_weekday, _rows_weekday
-from app.forecast.los.selection import (
-    _boosted,
-    _ensemble_x,
-    _one_thread,
-    _stays_at,
-    recent_landmarks,
-)
+from app.forecast.los.selection import _boosted, _ensemble_x, _one_thread, _stays_at
 from app.stats.kaplan_meier import KaplanMeier
 from app.stats.stay_groups import entry_on_hours, round_up_to_hours
 
@@ -184,14 +178,19 @@ def _thin_rows(rows: IntervalRows, limit: int, rng: np.random.Generator) -> Inte
     return replace(thinned, weight=thinned.weight / keep_prob)
 
 
+# A model's forecasts (as fitted) from the landmarks its rate scale is fitted on, and those
+# landmarks (app/forecast/los/calibration.py).
+ScaleBasis = tuple[_Curves, Landmarks]
+
+
 def _test_metrics(model: LosModel, train_lm: Landmarks, train_rows: IntervalRows,
                   test_lm: Landmarks, tz: ZoneInfo, ensemble: Mapping[str, Any] | None,
-                  until_ns: int) -> dict[str, Any]:
-    """The test period's scores of ``model`` (trained on ``train_lm``, known at ``until_ns``),
-    of the Kaplan-Meier baseline and of the yardstick (``ensemble``'s settings, refitted on
-    the same rows). Like the tree, the yardstick's rates carry a scale fitted on its own
-    forecasts from the training period's last half year (app/forecast/los/calibration.py),
-    so the two are compared on equal terms."""
+                  scale_basis: ScaleBasis | None) -> dict[str, Any]:
+    """The test period's scores of ``model`` (trained on ``train_lm``), of the Kaplan-Meier
+    baseline and of the yardstick (``ensemble``'s settings, refitted on the same rows). Like
+    the tree, the yardstick's rates carry a scale fitted on its own forecasts from the
+    landmarks the tree's scale was fitted on (``scale_basis``; None: no scale), so the two
+    are compared on equal terms."""
     steps = HORIZON_STEPS + 1
     curves = _landmark_curves(model, test_lm, tz, steps)
     event, remaining = test_lm.ended, test_lm.remaining_days
@@ -209,14 +208,14 @@ def _test_metrics(model: LosModel, train_lm: Landmarks, train_rows: IntervalRows
         boosted_model = _boosted(ensemble["iterations"], **{
             k: v for k, v in ensemble.items() if k not in ("iterations", "val_loglik")})
         x_test = _ensemble_x(curves.x, _interval_weekday(curves.bounds_local).ravel())
-        recent = recent_landmarks(train_lm, until_ns, 0)
-        own = _landmark_curves(model, recent, tz, STEPS)
+        scale = 1.0
         with _one_thread():
             boosted_model.fit(x[keep], rows.event[keep] / exposure[keep],
                               sample_weight=(rows.weight * exposure)[keep])
-            scale = (scale_on(own.with_rates(boosted_model.predict(_ensemble_x(
-                own.x, _interval_weekday(own.bounds_local).ravel()))), recent).value
-                if recent.size else 1.0)
+            if scale_basis is not None:
+                own, recent = scale_basis
+                own_x = _ensemble_x(own.x, _interval_weekday(own.bounds_local).ravel())
+                scale = scale_on(own.with_rates(boosted_model.predict(own_x)), recent).value
             boosted = curves.with_rates(boosted_model.predict(x_test) * scale)
         out["ensemble_scale"] = scale
         out["ensemble"] = survival_metrics(event, remaining,

@@ -25,7 +25,7 @@ from app.forecast.los.constants import (
     PAYLOAD_FORMAT,
 )
 from app.forecast.los.design import make_design
-from app.forecast.los.metrics import _test_metrics
+from app.forecast.los.metrics import ScaleBasis, _test_metrics
 from app.forecast.los.model import LosModel, _landmark_curves
 from app.forecast.los.rows import Landmarks, build_landmarks, interval_rows, observation_names
 from app.forecast.los.selection import (
@@ -148,15 +148,16 @@ def train_los(state: UnitState, *, test_days: float | None = None,
         groups_t = _fit_groups(design_t, state.stays, test_from, group_params, seed,
                                full.extract_ns)
         model_t = LosModel(design_t, hazard_t, groups_t, state.census_time, HORIZON_STEPS)
-        # Scored as it would have been used: its own scale, fitted on the training period.
-        model_t = replace(model_t, scale=_hazard_scale(model_t, train_lm, test_from, tz,
-                                                       seed).value)
+        # Scored as it would have been used: its own scale, fitted on the training period
+        # (the yardstick's is fitted on the same landmarks).
+        basis_t = _scale_basis(model_t, train_lm, test_from, tz, seed)
+        model_t = replace(model_t, scale=_fitted_scale(basis_t).value)
         test_lm = _sample_landmarks(full.subset(full.at_ns >= test_from), MAX_TEST_LANDMARKS,
                                     rng)
         metrics.update({"test_from": _iso(test_from, tz), "test_to": _iso(until_ns, tz)})
         if test_lm.size:
             metrics.update(_test_metrics(model_t, train_lm, train_rows, test_lm, tz,
-                                         ensemble, test_from))
+                                         ensemble, basis_t))
         if ensemble is not None:
             metrics["ensemble_iterations"] = ensemble["iterations"]
             metrics["ensemble_settings"] = {k: v for k, v in ensemble.items()
@@ -173,8 +174,9 @@ def train_los(state: UnitState, *, test_days: float | None = None,
                                            full.extract_ns)
     groups = _fit_groups(design, state.stays, until_ns, group_params, seed, full.extract_ns,
                          clock=(hazard.profile, tz) if newcomer_clock["chosen"] else None)
-    scale = _hazard_scale(LosModel(design, hazard, groups, state.census_time, HORIZON_STEPS),
-                          full, until_ns, tz, seed)
+    scale = _fitted_scale(_scale_basis(
+        LosModel(design, hazard, groups, state.census_time, HORIZON_STEPS), full, until_ns, tz,
+        seed))
     metrics["train_seconds"] = timer.perf_counter() - clock_start
     metrics["training_rows"] = int(len(rows.event))
     payload = {
@@ -205,14 +207,16 @@ def train_los(state: UnitState, *, test_days: float | None = None,
     return _json_safe(payload)
 
 
-def _hazard_scale(model: LosModel, landmarks: Landmarks, until_ns: int, tz: ZoneInfo,
-                  seed: int) -> HazardScale:
-    """The scale on the tree's rates fitted on its forecasts from the landmarks of the last
-    half year before ``until_ns`` (app/forecast/los/calibration.py)."""
+def _scale_basis(model: LosModel, landmarks: Landmarks, until_ns: int, tz: ZoneInfo,
+                 seed: int) -> ScaleBasis | None:
+    """``model``'s forecasts (as fitted) from the landmarks its rate scale is fitted on, the
+    last half year's before ``until_ns`` (app/forecast/los/calibration.py); None without any."""
     recent = recent_landmarks(landmarks, until_ns, seed)
-    if recent.size == 0:
-        return HazardScale()
-    return scale_on(_landmark_curves(model, recent, tz, STEPS), recent)
+    return None if recent.size == 0 else (_landmark_curves(model, recent, tz, STEPS), recent)
+
+
+def _fitted_scale(basis: ScaleBasis | None) -> HazardScale:
+    return HazardScale() if basis is None else scale_on(*basis)
 
 
 def _json_safe(value: Any) -> Any:
