@@ -129,7 +129,8 @@ def _mean_stay_baseline(known: UnitState, record: ModelRecord, census_at: np.nda
     los = LosModel.from_payload(record.payload)
     current = known.current_stays()
     morrow_like = forecast_inputs(known, record, n)
-    groups = los.groups.group_of(los.design.covariate_matrix(current)) if len(current) else []
+    groups = (los.groups.group_of(los.design.covariate_matrix(current)) if len(current)
+              else np.zeros(0, dtype=np.int64))
     leave = np.array([los.groups.get(int(g)).distribution.conditional(float(d)).mean()
                       for g, d in zip(groups, current["days_in"], strict=True)])
     p_det = ((leave[:, None] > census_at[None, :]).astype(float) if len(current)
@@ -345,7 +346,8 @@ def summarise(unit: str, start: date, end: date, days: int,
         matrix = np.zeros((len(s.pmf), width))
         for j, p in enumerate(s.pmf):
             matrix[j, : p.size] = p
-        pits[method] = [float(v) for v in randomised_pit(matrix, np.asarray(s.outcome), rng=rng)]
+        pit = np.atleast_1d(randomised_pit(matrix, np.asarray(s.outcome), rng=rng))
+        pits[method] = [float(v) for v in pit]
     return {"unit": unit, "from": start.isoformat(), "to": end.isoformat(), "days": days,
             "methods": table, "pit": pits}
 

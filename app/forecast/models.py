@@ -47,8 +47,10 @@ def newest_model(session: Session, unit: str, not_after: datetime
     # A stored model never changes, so its parsed payload is kept: every page view asks.
     payload = _payloads.get(model_id)
     if payload is None:
-        payload = json.loads(session.scalar(
-            select(TrainedModel.payload).where(TrainedModel.id == model_id)))
+        text = session.scalar(select(TrainedModel.payload).where(TrainedModel.id == model_id))
+        if text is None:  # removed between the two reads
+            return None
+        payload = json.loads(text)
         _payloads.put(model_id, payload)
     return model_id, as_utc(row[1]), payload
 

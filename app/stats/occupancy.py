@@ -446,9 +446,11 @@ def with_current(p_current: npt.ArrayLike, others: Newcomers, beds: Sequence[int
         if passed is not None:
             pmf, passed_mean = waiting_when_full(pmf, passed.pmf(k), limit)
             components["emergency"] += passed_mean
-        quantiles = dict(zip((f"{q:g}" for q in QUANTILE_LEVELS),
-                             (int(v) for v in pmf_quantile(pmf, QUANTILE_LEVELS)), strict=True))
-        over = None if beds[k] is None else float(pmf_sf_over(pmf, beds[k]))
+        levels = np.atleast_1d(pmf_quantile(pmf, QUANTILE_LEVELS))
+        quantiles = dict(zip((f"{q:g}" for q in QUANTILE_LEVELS), (int(v) for v in levels),
+                             strict=True))
+        bed_count = beds[k]
+        over = None if bed_count is None else float(pmf_sf_over(pmf, bed_count))
         out.append(OccupancyDay(pmf=pmf, mean=pmf_mean(pmf), quantiles=quantiles,
                                 p_over_capacity=over, components=components,
                                 passed_mean=passed_mean))

@@ -89,7 +89,7 @@ def current(session: Session, unit: str, *, as_of: datetime | None = None,
         moment = forecast_moment(current_time().astimezone(UTC), markers.written_at)
     else:
         moment = as_of.astimezone(UTC)
-    where = str(session.get_bind().url)
+    where = str(session.get_bind().engine.url)
     record: ModelRecord | None = None
     problem = None
     try:

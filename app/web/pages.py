@@ -41,7 +41,8 @@ def _day_rows(shown: Shown) -> list[dict[str, Any]]:
     assert forecast is not None
     previous = float(shown.state.occupancy_at(shown.state.as_of))
     rows = []
-    admissions = shown.admissions or [None] * len(forecast["days"])
+    admissions: list[float | None] = (list(shown.admissions) if shown.admissions
+                                      else [None] * len(forecast["days"]))
     for day, admitted in zip(forecast["days"], admissions, strict=True):
         q = day["quantiles"]
         row = {"date": day["date"], "census_at": day["census_at"], "beds": day["beds"],
@@ -105,11 +106,12 @@ def unit_page(request: Request, unit: str, session: SessionDep, actor: ReadActor
         "units": [u.code for u in repo.list_units(session)],
         "today": now_local.date().isoformat(),
     }
-    if shown.forecast is not None:
+    forecast = shown.forecast
+    if forecast is not None:
         context["days"] = shown.view("days", lambda: _day_rows(shown))
-        context["tonight"] = shown.forecast["days"][0]
+        context["tonight"] = forecast["days"][0]
         context["fan_json"] = shown.view("fan", lambda: json.dumps(figures.fan_chart(
-            shown.forecast, occupied, f"now {now_local:%H:%M}")))
+            forecast, occupied, f"now {now_local:%H:%M}")))
     # Score entry: the answer at the entered row, score names with ranges, the time box.
     context.update(routes_scores.page_context(
         request, list(state.observations["name"].unique()), current_time()))

@@ -79,8 +79,10 @@ def choose_newcomer_clock(design: Design, stays: pd.DataFrame, cutoff_ns: int,
     for g in groups.groups:
         rows = node == g.node
         if rows.any():
+            on_clock_stay = g.clock_distribution
+            assert on_clock_stay is not None  # the groups were fitted with clock= above
             p_calendar[rows] = g.distribution.sf(lag[rows])
-            p_clock[rows] = g.clock_distribution.sf(on_clock[rows])
+            p_clock[rows] = on_clock_stay.sf(on_clock[rows])
     calendar_score = _log_score(p_calendar, present, seen)
     clock_score = _log_score(p_clock, present, seen)
     out.update({"chosen": bool(clock_score > calendar_score),
