@@ -161,12 +161,23 @@ def _quarter_hours(state: UnitState, first: date, last: date
             (wall % NS_PER_DAY) // (60 * NS_PER_MINUTE))
 
 
-def _admission_levels(state: UnitState, first: date, last: date
+def _admission_levels(state: UnitState, first: date, last: date,
+                      senders: Collection[str] = (), *, passed_on: bool = False
                       ) -> Callable[[int], Levels] | None:
     """For :func:`app.stats.ceiling.best_ceiling`: the levels over staffed beds just before each
     emergency admission of the local days ``first``..``last`` and on the grid, with the grid's
     demand-days, read with a given recording-lag allowance (None: no admission with a bed
-    count)."""
+    count).
+
+    Only the unit's own emergencies count, not patients passed on by ``senders``: those wait
+    in the sending unit for a bed and come as soon as one frees, so they pile up just below
+    the ceiling and make the level above it look closed. On the demo's surgical ward (which
+    admits emergencies up to one patient over its staffed beds) its step-downs were 335 of
+    the 372 emergency admissions found one below the staffed beds, and with them counted the
+    ward was read as full at its staffed beds, where its own emergencies came in at the same
+    rate as below (50 over 84 days of demand, 0.60 a day, against 0.62-0.78). With
+    ``passed_on`` the levels are those of the patients passed on by ``senders`` instead:
+    the ceiling they come in below (the ward's step-downs: its staffed beds)."""
     stays = state.stays
     local_day = _local(stays["admitted_at"], state).dt.date
     inside = ((local_day >= first) & (local_day <= last)).to_numpy()
@@ -176,7 +187,11 @@ def _admission_levels(state: UnitState, first: date, last: date
     if all(b is None for b in beds):
         return None
     staffed = np.array([np.nan if b is None else float(b) for b in beds])
-    emergency = inside & (stays["admission_type"] == "emergency").to_numpy()
+    chosen = (passed_on_mask(stays, senders) if passed_on
+              else emergency_mask(stays, senders))
+    emergency = inside & chosen.to_numpy()
+    if not emergency.any():
+        return None
     at_ns = utc_ns(stays["admitted_at"])[emergency]
     day_of = np.array([(d - first).days for d in local_day[emergency]], dtype=np.int64)
     grid_ns, grid_day, hour = _quarter_hours(state, first, last)
@@ -197,22 +212,39 @@ def _admission_levels(state: UnitState, first: date, last: date
     return levels
 
 
-def learn_ceiling(state: UnitState, first: date, last: date) -> Ceiling | None:
+def learn_ceiling(state: UnitState, first: date, last: date,
+                  senders: Collection[str] = ()) -> Ceiling | None:
     """The unit's ceiling beyond its staffed beds on the local days ``first``..``last`` (0 if
-    it never went over) and the recording-lag allowance it is read with; None without a bed
-    count (:func:`app.stats.ceiling.best_ceiling`)."""
-    levels = _admission_levels(state, first, last)
+    it never went over) and the recording-lag allowance it is read with, from its own
+    emergencies (not those passed on by ``senders``); None without a bed count
+    (:func:`app.stats.ceiling.best_ceiling`)."""
+    levels = _admission_levels(state, first, last, senders)
     return None if levels is None else best_ceiling(levels)
 
 
-def capacity_excess(state: UnitState, first: date, last: date) -> int | None:
+def learn_passed_on_ceiling(state: UnitState, first: date, last: date,
+                            senders: Collection[str], lag_minutes: int) -> int | None:
+    """The ceiling beyond staffed beds below which patients passed on by ``senders`` come in
+    (None: none passed on in the window, or no bed count), read with the own emergencies'
+    allowance for late recording. A passed-on patient waits in its unit for a bed; where the
+    unit takes them only below its staffed beds and its own emergencies one bed further (the
+    demo's surgical ward), one ceiling for both either lets the transfers fill the
+    escalation bed or turns the own emergencies away from it."""
+    levels = _admission_levels(state, first, last, senders, passed_on=True)
+    if levels is None:
+        return None
+    return best_ceiling(levels, (lag_minutes,)).excess
+
+
+def capacity_excess(state: UnitState, first: date, last: date,
+                    senders: Collection[str] = ()) -> int | None:
     """The unit's ceiling beyond its staffed beds on the local days ``first``..``last`` (0 if it
     never went over); None without a bed count.
 
     Learnt from the emergency admission chance by occupancy level (:func:`learn_ceiling`), not
     from the single largest overflow, which one night of escalation beds would loosen for
     good, and with the occupancy read allowing for discharges recorded late."""
-    found = learn_ceiling(state, first, last)
+    found = learn_ceiling(state, first, last, senders)
     return None if found is None else found.excess
 
 
@@ -312,7 +344,7 @@ def train_arrivals(state: UnitState, units: Collection[str] = (),
             f"(after the first discharge) before {state.as_of:%Y-%m-%d}; at least "
             f"{MIN_WINDOW_DAYS} are needed to learn the weekday pattern of arrivals")
     profile = hourly_profile(admitted[emergency].dt.hour)
-    ceiling = learn_ceiling(state, first, last) if first <= last else None
+    ceiling = learn_ceiling(state, first, last, senders) if first <= last else None
     excess = None if ceiling is None else ceiling.excess
     lag = 0 if ceiling is None else ceiling.lag_minutes
     exposure = None
@@ -349,6 +381,10 @@ def train_arrivals(state: UnitState, units: Collection[str] = (),
         },
         "transfers_in": _transfer_streams(state, came, first, last),
         "capacity": {"excess_beds": excess,
+                     # Patients passed on by other units come in below their own ceiling.
+                     "passed_on_excess_beds": (
+                         None if excess is None or not came.any()
+                         else learn_passed_on_ceiling(state, first, last, senders, lag)),
                      # The allowance for late recording the unit's fullness is read with.
                      "recording_lag_minutes": None if excess is None else lag,
                      "open_share": None if exposure is None else float(np.mean(exposure))},
@@ -574,6 +610,13 @@ def excess_beds(arrivals: Mapping[str, Any]) -> int | None:
     trained before the ceiling was learnt have none and keep their admitted rates)."""
     value = arrivals.get("capacity", {}).get("excess_beds")
     return None if value is None else int(value)
+
+
+def passed_on_excess_beds(arrivals: Mapping[str, Any]) -> int | None:
+    """Beds beyond staffed the patients passed on by other units fill at most: their own
+    ceiling where one was learnt, else the unit's (models trained before it was learnt)."""
+    value = arrivals.get("capacity", {}).get("passed_on_excess_beds")
+    return excess_beds(arrivals) if value is None else int(value)
 
 
 def recording_lag(arrivals: Mapping[str, Any]) -> int:

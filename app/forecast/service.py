@@ -24,6 +24,7 @@ from app.forecast.arrivals import (
     emergency_demand,
     emergency_rate,
     excess_beds,
+    passed_on_excess_beds,
     recent_days_read,
     train_arrivals,
     unbooked_means,
@@ -297,8 +298,10 @@ class Backdrop:
     # Paths that turn arrivals away at their arrival instant (None: no ceiling).
     losses: LossDraws | None = None
     week: bool = False
-    # Patients other units pass on (None: no sending unit; app/forecast/transfers.py).
+    # Patients other units pass on (None: no sending unit; app/forecast/transfers.py), and
+    # the ceiling they come in below at each census instant (None: the unit's ``limits``).
     passed: PassedOn | None = None
+    passed_limits: list[int | None] | None = None
 
     @cached_property
     def newcomers(self) -> Newcomers:
@@ -367,7 +370,8 @@ def forecast_backdrop(state: UnitState, record: ModelRecord, *, days: int = DEFA
     return Backdrop(unit=state.unit, as_of=state.as_of, stay_ids=stay_ids, los=los,
                     instants=instants, census_at=census_at, local_days=local_days, beds=beds,
                     booked=booked, streams=streams, limits=limits, draws=draws, losses=loss_draws,
-                    passed=passed, week=week)
+                    passed=passed, week=week,
+                    passed_limits=_limits(beds, passed_on_excess_beds(arrivals), len(stay_ids)))
 
 
 def _limits(beds: list[int | None], excess: int | None, in_unit: int) -> list[int | None]:
@@ -454,7 +458,8 @@ def forecast_on(backdrop: Backdrop, state: UnitState, record: ModelRecord
     if backdrop.losses is not None:
         lost = losses(backdrop.losses, inputs.p_grid, backdrop.limits)
     results = with_current(p_present, backdrop.newcomers, inputs.beds, backdrop.limits,
-                           passed=backdrop.passed, lost=lost)
+                           passed=backdrop.passed, lost=lost,
+                           passed_limits=backdrop.passed_limits)
     out_days = []
     for k, (instant, local_day, bed_count, result) in enumerate(zip(
             inputs.instants, inputs.local_days, inputs.beds, results, strict=True)):

@@ -399,8 +399,8 @@ def occupancy_days(
 def with_current(p_current: npt.ArrayLike, others: Newcomers, beds: Sequence[int | None],
                  limits: Sequence[int | None] | None = None, *, draws: LossDraws | None = None,
                  p_grid: npt.ArrayLike | None = None,
-                 passed: PassedOn | None = None, lost: Losses | None = None
-                 ) -> list[OccupancyDay]:
+                 passed: PassedOn | None = None, lost: Losses | None = None,
+                 passed_limits: Sequence[int | None] | None = None) -> list[OccupancyDay]:
     """Add the current stays (Poisson-binomial) to the newcomers, instant by instant, and
     turn arrivals away at the ceiling: at the instant they come, by the paths ``draws``
     (:mod:`app.stats.loss`; ``p_grid`` the current stays on their grid, interpolated from
@@ -414,7 +414,9 @@ def with_current(p_current: npt.ArrayLike, others: Newcomers, beds: Sequence[int
     them (a passed-on patient's presence rises and falls, which the paths' current stays
     cannot), so their count is added to the unit's corrected one: the arrivals turned away
     are those the unit's own patients alone would turn away, which understates the turning
-    away when many transfers come in."""
+    away when many transfers come in. ``passed_limits``: the ceiling the passed-on patients
+    come in below at each instant (None: ``limits``; a unit may take them only below its
+    staffed beds and its own emergencies one bed further)."""
     n_instants = len(others.booked)
     p_now = np.asarray(p_current, dtype=float).reshape(-1, n_instants)
     ceiling = [None] * n_instants if limits is None else list(limits)
@@ -444,7 +446,8 @@ def with_current(p_current: npt.ArrayLike, others: Newcomers, beds: Sequence[int
             components[name] += value
         passed_mean = None
         if passed is not None:
-            pmf, passed_mean = waiting_when_full(pmf, passed.pmf(k), limit)
+            passed_limit = limit if passed_limits is None else passed_limits[k]
+            pmf, passed_mean = waiting_when_full(pmf, passed.pmf(k), passed_limit)
             components["emergency"] += passed_mean
         levels = np.atleast_1d(pmf_quantile(pmf, QUANTILE_LEVELS))
         quantiles = dict(zip((f"{q:g}" for q in QUANTILE_LEVELS), (int(v) for v in levels),

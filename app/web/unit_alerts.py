@@ -14,7 +14,7 @@ from typing import Any
 from sqlalchemy.orm import Session
 
 from app.alert_levels import LIKELY_TO_LEAVE, RISK_TERM, AlertLevels, risk_sentence
-from app.forecast.arrivals import excess_beds
+from app.forecast.arrivals import excess_beds, passed_on_excess_beds
 from app.forecast.service import NoModel, model_for
 from app.nights import night_of
 from app.store.unit_levels import unit_levels
@@ -56,10 +56,14 @@ def ceiling(session: Session, shown: Shown, beds_now: int | None) -> dict[str, A
         record = model_for(session, shown.state.unit, shown.state.as_of.to_pydatetime())
     except NoModel:
         return None
-    extra = excess_beds(record.payload.get("arrivals", {}))
+    arrivals = record.payload.get("arrivals", {})
+    extra = excess_beds(arrivals)
     if extra is None:
         return None
-    return {"extra": extra, "total": None if beds_now is None else beds_now + extra}
+    passed_on = passed_on_excess_beds(arrivals)
+    return {"extra": extra, "total": None if beds_now is None else beds_now + extra,
+            # Patients passed on by other units, where they come in below another ceiling.
+            "passed_on_extra": None if passed_on == extra else passed_on}
 
 
 def leaving(shown: Shown, patients: list[dict[str, Any]]) -> dict[str, Any]:

@@ -4,6 +4,7 @@ checked against a Monte Carlo of the two-stage stay and against the infinite-ser
 from __future__ import annotations
 
 import numpy as np
+import pytest
 from scipy import stats
 
 from app.stats.occupancy import ArrivalStream, stream_presence
@@ -124,3 +125,33 @@ def test_transfers_wait_while_the_receiving_unit_is_full() -> None:
     free, mean = waiting_when_full(own, passed, None)
     assert abs(mean - 3.5) < 1e-6
     np.testing.assert_allclose(free[:40], np.convolve(own, passed)[:40], atol=1e-12)
+
+
+def test_transfers_wait_below_their_own_ceiling_when_one_is_given() -> None:
+    # A unit holding 12 stays (each still in with chance 0.9) that takes its own emergencies
+    # up to 12 but patients passed on only below 11 (its staffed beds): in are
+    # A + min(B, (11 - A)+), checked against numpy draws of A and B as above.
+    from types import SimpleNamespace
+
+    from app.stats.occupancy import with_current
+
+    passed = stats.poisson(3.0).pmf(np.arange(25))
+    passed = passed / passed.sum()
+    others = SimpleNamespace(booked=[np.ones(1)], booked_mean=[0.0], arriving=[{}],
+                             arriving_mean=[{}])
+    sender = SimpleNamespace(pmf=lambda k: passed)
+    p = np.full((12, 1), 0.9)
+    (own_limit,) = with_current(p, others, [11], [12], passed=sender)
+    (below_staffed,) = with_current(p, others, [11], [12], passed=sender, passed_limits=[11])
+    rng = np.random.default_rng(8)
+    a = rng.binomial(12, 0.9, 400_000)
+    b = rng.poisson(3.0, a.size)
+    for limit, day in ((12, own_limit), (11, below_staffed)):
+        total = a + np.minimum(b, np.maximum(limit - a, 0))
+        mc = np.bincount(total, minlength=day.pmf.size)[: day.pmf.size] / a.size
+        assert np.max(np.abs(mc - day.pmf)) < 0.004
+    # The chance of more patients than the 11 staffed beds: only current stays pass 11 when
+    # transfers wait below it (0.9^12 = 0.2824 of all 12 staying), against 0.2824 plus the
+    # nights a transfer fills the twelfth bed.
+    assert below_staffed.p_over_capacity == pytest.approx(0.9**12, abs=1e-9)
+    assert own_limit.p_over_capacity > 0.5

@@ -5,6 +5,7 @@ construction, against Erlang B and SciPy's Poisson likelihood."""
 from __future__ import annotations
 
 import dataclasses
+import heapq
 
 import numpy as np
 import pandas as pd
@@ -116,3 +117,76 @@ def test_discharges_written_on_time_need_no_allowance() -> None:
     found = learn_ceiling(state, first, last)
     assert found is not None
     assert (found.excess, found.lag_minutes) == (1, 0)
+
+
+def _with_waiting_transfers(seed: int, own_rate: float = 2.0, passed_rate: float = 3.5,
+                            mean_stay: float = 1.6) -> UnitState:
+    """A unit of ``BEDS`` staffed beds that admits its own emergencies (Poisson, ``own_rate``
+    a day) while it holds fewer than BEDS + 1, and patients another unit ("UP") passes on
+    (Poisson requests, ``passed_rate`` a day) only below BEDS: they wait upstream and come the
+    moment a bed frees, as the demo's step-downs do (there, passed-on patients are about twice
+    the ward's own emergencies). Exponential stays of ``mean_stay`` days; turned-away
+    emergencies leave no row. Its own emergencies' ceiling beyond staffed beds is 1 by
+    construction."""
+    rng = np.random.default_rng(seed)
+    days = 400.0
+    events: list[tuple[float, int]] = []          # (time, 0 own arrival / 1 transfer request)
+    for kind, rate in ((0, own_rate), (1, passed_rate)):
+        t = np.cumsum(rng.exponential(1 / rate, size=int(rate * days * 1.2)))
+        events += [(float(v), kind) for v in t[t < days]]
+    events.sort()
+    leaving: list[float] = []
+    waiting: list[float] = []
+    rows: list[tuple[float, float, str | None]] = []
+
+    def admit(at: float, source: str | None) -> None:
+        out = at + float(rng.exponential(mean_stay))
+        heapq.heappush(leaving, out)
+        rows.append((at, out, source))
+
+    for t, kind in events:
+        while leaving and leaving[0] <= t:
+            freed = heapq.heappop(leaving)
+            if waiting and len(leaving) < BEDS:    # the waiting patient takes the bed now
+                waiting.pop(0)
+                admit(freed, "UP")
+        if kind == 0 and len(leaving) < BEDS + 1:
+            admit(t, None)
+        elif kind == 1:
+            if len(leaving) < BEDS and not waiting:
+                admit(t, "UP")
+            else:
+                waiting.append(t)
+    base = loss_system(seed=seed)
+    start = pd.Timestamp("2025-01-01", tz="UTC")
+    as_of = start + pd.Timedelta(days=days)
+    admitted = start + pd.to_timedelta([r[0] for r in rows], unit="D")
+    discharged = start + pd.to_timedelta([r[1] for r in rows], unit="D")
+    stays = pd.DataFrame({
+        "stay_id": [f"W-{i:06d}" for i in range(len(rows))], "admitted_at": admitted,
+        "discharged_at": pd.Series(discharged).where(discharged <= as_of).to_numpy(),
+        "admission_type": "emergency", "outcome": None, "age": 60.0, "sex": "f",
+        "specialty": "medicine", "source": "ed", "booking_id": None,
+        "from_unit": [r[2] for r in rows]})
+    stays["discharged_at"] = pd.to_datetime(stays["discharged_at"], utc=True)
+    return dataclasses.replace(base, as_of=as_of,
+                               stays=stays.sort_values("admitted_at", ignore_index=True))
+
+
+def test_patients_passed_on_do_not_set_the_ceiling_of_the_units_own_emergencies() -> None:
+    # Passed-on patients pile up one below staffed beds (they take each bed as it frees), so
+    # counted with the unit's own emergencies they make staffed beds look like the ceiling;
+    # the own emergencies alone show the constructed one (1 beyond staffed beds). Measured
+    # over seeds 0-3 and four mixes of rates (own 1-3 a day, passed on 2-4, stays 1.3-3.5
+    # days): 1 from the own emergencies, 0 from both, every time.
+    state = _with_waiting_transfers(seed=7)
+    first, last = _days(state)
+    own = learn_ceiling(state, first, last, senders=["UP"])
+    assert own is not None and own.excess == 1
+    both = learn_ceiling(state, first, last)            # "UP" not known as a sender
+    assert both is not None and both.excess == 0
+    capacity = train_arrivals(state, ["LOSS", "UP"])["capacity"]
+    assert capacity["excess_beds"] == 1
+    # The passed-on patients' own ceiling: they come in only below staffed beds (0).
+    assert capacity["passed_on_excess_beds"] == 0
+    assert train_arrivals(state)["capacity"]["passed_on_excess_beds"] is None  # no sender

@@ -239,5 +239,11 @@ def test_the_leaving_list_highlights_by_the_stated_level(browser, served) -> Non
         payload = json.loads(session.scalars(select(TrainedModel.payload).where(
             TrainedModel.unit == UNIT)).first())
     extra = payload["arrivals"]["capacity"]["excess_beds"]
-    assert f"once it holds {extra} patient" in page.inner_text("#ceiling-note")
+    note = page.inner_text("#ceiling-note")
+    assert f"once it holds {extra} patient" in note
+    # Patients passed on by another unit are said to wait below their own ceiling only
+    # where the stored model learnt one apart from the emergencies'.
+    passed_on = payload["arrivals"]["capacity"].get("passed_on_excess_beds")
+    assert ("Patients passed on by other units wait there" in note) == (
+        passed_on is not None and passed_on != extra)
     shot(page, "alerts-leaving-list")

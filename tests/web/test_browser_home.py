@@ -181,6 +181,12 @@ def test_the_charts_hover_lists_both_bounds_of_every_band(chromium, site) -> Non
     context, page = _page(chromium, site)
     page.goto(site.base + "/units/KV-SURG")
     page.wait_for_selector("#fan .main-svg")
+    # The demo's ward admits its own emergencies up to one over its staffed beds and takes
+    # critical care's step-downs only below them (app/demo/generate.py, "Bed pressure" and
+    # "Step-down and exit block"): the ceiling note says what the model learnt of both.
+    note = page.inner_text("#ceiling-note")
+    assert "once it holds 1 patient more than its staffed beds" in note
+    assert "passed on by other units wait there until it holds fewer than its staffed" in note
     forecast = _api(page, site, "KV-SURG")
     for index in (1, 5):  # tonight and Fri night
         texts = _hover_texts(page, index)
