@@ -187,15 +187,14 @@ def _admission_levels(state: UnitState, first: date, last: date,
     if all(b is None for b in beds):
         return None
     staffed = np.array([np.nan if b is None else float(b) for b in beds])
-    chosen = (passed_on_mask(stays, senders) if passed_on
-              else emergency_mask(stays, senders))
-    emergency = inside & chosen.to_numpy()
-    if not emergency.any():
+    read = inside & (passed_on_mask(stays, senders) if passed_on
+                     else emergency_mask(stays, senders)).to_numpy()
+    if not read.any():
         return None
-    at_ns = utc_ns(stays["admitted_at"])[emergency]
-    day_of = np.array([(d - first).days for d in local_day[emergency]], dtype=np.int64)
+    at_ns = utc_ns(stays["admitted_at"])[read]
+    day_of = np.array([(d - first).days for d in local_day[read]], dtype=np.int64)
     grid_ns, grid_day, hour = _quarter_hours(state, first, last)
-    profile = hourly_profile(_local(stays["admitted_at"], state)[emergency].dt.hour)
+    profile = hourly_profile(_local(stays["admitted_at"], state)[read].dt.hour)
     days = profile[hour] * 24 * OPEN_GRID_MINUTES / 1440
     staffed_b, staffed_g = staffed[day_of], staffed[grid_day]
     known_b, known_g = ~np.isnan(staffed_b), ~np.isnan(staffed_g)
